@@ -1,0 +1,7 @@
+//! The one-cell engine: everything needed to decide one cell, and nothing about HTTP
+//! or SQL. Numbers that are bounds travel as [`interval::Interval`]s (or affine forms),
+//! never as bare f64, so that an inward rounding cannot slip in.
+
+pub mod expr;
+pub mod interval;
+pub mod spec;
