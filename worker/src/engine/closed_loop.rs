@@ -1,0 +1,218 @@
+//! The closed loop of a spec, ready to analyse: plant, networks and the controller's
+//! semantics, shared by the proof attempt (`reach`) and the falsifier (`falsify`).
+//!
+//! Semantics (README "Closed-loop semantics"): with c₋₁ the initial command, at each
+//! k = 0..H−1 the controller observes x(kT) plus noise, feeds (observation − offset) /
+//! scale to network `network_of_command[c_{k−1}]`, and decides c_k by argmax or argmin
+//! of the outputs, ties going to the lowest index. With latency 0 the inputs of c_k hold
+//! on [kT, (k+1)T]; with latency 1 those of c_{k−1}.
+
+use super::interval::Interval;
+use super::net::{self, Network, OutputBounds};
+use super::plant::Plant;
+use super::spec::{BoundsMethod, Decision, Spec};
+use std::collections::BTreeMap;
+use std::path::Path;
+
+/// Errors that stop an analysis before it starts (bad cell, bad model files).
+#[derive(Debug, thiserror::Error)]
+pub enum SetupError {
+    #[error("cell: {0}")]
+    Cell(String),
+    #[error("controller.networks[{index}]: {message}")]
+    Network { index: usize, message: String },
+    #[error("dynamics: {0}")]
+    Plant(String),
+}
+
+/// A spec with its plant and networks loaded.
+pub struct ClosedLoop {
+    pub spec: Spec,
+    pub plant: Plant,
+    pub nets: Vec<Network>,
+}
+
+impl ClosedLoop {
+    /// Build from a validated spec and its networks (`nets[i]` for `spec.networks[i]`);
+    /// the networks' shapes are checked against the spec.
+    pub fn new(spec: Spec, nets: Vec<Network>) -> Result<ClosedLoop, SetupError> {
+        if nets.len() != spec.networks.len() {
+            return Err(SetupError::Network {
+                index: nets.len().min(spec.networks.len()),
+                message: format!("{} networks given for {} in the spec", nets.len(), spec.networks.len()),
+            });
+        }
+        let shapes: Vec<_> = nets.iter().map(|n| n.shape()).collect();
+        if let Err(errs) = spec.check_networks(&shapes) {
+            let e = &errs[0];
+            let index = e.path.trim_start_matches("controller.networks[").trim_end_matches(']').parse().unwrap_or(0);
+            return Err(SetupError::Network { index, message: e.message.clone() });
+        }
+        let plant = Plant::new(&spec).map_err(|e| SetupError::Plant(e.to_string()))?;
+        Ok(ClosedLoop { spec, plant, nets })
+    }
+
+    /// Load the networks named by relative paths in the spec from `base_dir`.
+    pub fn load_networks(spec: &Spec, base_dir: &Path) -> Result<Vec<Network>, SetupError> {
+        spec.networks
+            .iter()
+            .enumerate()
+            .map(|(index, r)| {
+                if r.starts_with("sha256:") {
+                    return Err(SetupError::Network {
+                        index,
+                        message: format!("'{r}' is a stored model; fetch it from the server"),
+                    });
+                }
+                let path = base_dir.join(r);
+                let bytes = std::fs::read(&path).map_err(|e| SetupError::Network {
+                    index,
+                    message: format!("cannot read {}: {e}", path.display()),
+                })?;
+                net::load_onnx(&bytes).map_err(|e| SetupError::Network { index, message: e.to_string() })
+            })
+            .collect()
+    }
+
+    /// The whole envelope as a cell.
+    pub fn envelope(&self) -> Vec<Interval> {
+        self.spec.envelope.clone()
+    }
+
+    /// Parse a cell given as `{"state": [lo, hi], …}`; states left out keep their
+    /// envelope interval. The cell must lie inside the envelope.
+    pub fn cell_from_map(&self, map: &BTreeMap<String, [f64; 2]>) -> Result<Vec<Interval>, SetupError> {
+        let mut cell = self.envelope();
+        for (name, r) in map {
+            let Some(i) = self.spec.state_index(name) else {
+                return Err(SetupError::Cell(format!("'{name}' is not a state")));
+            };
+            if !(r[0].is_finite() && r[1].is_finite() && r[0] <= r[1]) {
+                return Err(SetupError::Cell(format!("{name}: [{}, {}] is not a finite interval", r[0], r[1])));
+            }
+            let env = self.spec.envelope[i];
+            if r[0] < env.lo() || r[1] > env.hi() {
+                return Err(SetupError::Cell(format!(
+                    "{name}: [{}, {}] leaves the envelope [{}, {}]",
+                    r[0],
+                    r[1],
+                    env.lo(),
+                    env.hi()
+                )));
+            }
+            cell[i] = Interval::new(r[0], r[1]);
+        }
+        Ok(cell)
+    }
+
+    /// Which network decides after command `prev`.
+    pub fn network_after(&self, prev: usize) -> &Network {
+        &self.nets[self.spec.network_of_command[prev]]
+    }
+
+    /// Enclosure of the network input given enclosures of the observations (noise
+    /// already added): (o − offset) / scale, outward rounded.
+    pub fn network_input(&self, obs: &[Interval]) -> Vec<Interval> {
+        obs.iter()
+            .enumerate()
+            .map(|(j, o)| (*o - Interval::point(self.spec.offset[j])) / Interval::point(self.spec.scale[j]))
+            .collect()
+    }
+
+    /// Sound bounds on the outputs of the network chosen after `prev`.
+    pub fn bound_outputs(&self, prev: usize, input: &[Interval], method: BoundsMethod) -> OutputBounds {
+        net::output_bounds(self.network_after(prev), input, method)
+    }
+
+    /// The inputs (plant inputs) applied during a period, given the command decided in
+    /// it and the previous one.
+    pub fn applied(&self, decided: usize, previous: usize) -> usize {
+        if self.spec.latency == 0 {
+            decided
+        } else {
+            previous
+        }
+    }
+
+    /// f64 observation → network input → decision (simulation; not a bound).
+    pub fn decide_f64(&self, prev: usize, x: &[f64], noise: &[f64]) -> usize {
+        let input: Vec<f64> = self
+            .spec
+            .observations
+            .iter()
+            .enumerate()
+            .map(|(j, o)| (o.expr.eval_f64(x) + noise[j] - self.spec.offset[j]) / self.spec.scale[j])
+            .collect();
+        let y = self.network_after(prev).eval(&input);
+        pick(&y, self.spec.decision)
+    }
+}
+
+/// argmax / argmin with ties to the lowest index (as numpy's argmax does).
+pub fn pick(y: &[f64], decision: Decision) -> usize {
+    let mut best = 0;
+    for i in 1..y.len() {
+        let better = match decision {
+            Decision::Argmax => y[i] > y[best],
+            Decision::Argmin => y[i] < y[best],
+        };
+        if better {
+            best = i;
+        }
+    }
+    best
+}
+
+/// Commands that the controller may pick given sound bounds on its outputs: command
+/// j is ruled out only when some other output provably beats it, ties counted for
+/// the lower index. Undefined (NaN) bounds rule nothing out.
+pub fn possible_commands(b: &OutputBounds, decision: Decision) -> Vec<usize> {
+    let n = b.outputs.len();
+    (0..n)
+        .filter(|&j| {
+            !(0..n).any(|i| {
+                if i == j {
+                    return false;
+                }
+                // d encloses y_i − y_j
+                let d = b.diff[i][j];
+                match (decision, i < j) {
+                    (Decision::Argmax, true) => d.lo() >= 0.0, // y_i ≥ y_j: tie goes to i
+                    (Decision::Argmax, false) => d.lo() > 0.0,
+                    (Decision::Argmin, true) => d.hi() <= 0.0,
+                    (Decision::Argmin, false) => d.hi() < 0.0,
+                }
+            })
+        })
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn bounds(diff01: Interval) -> OutputBounds {
+        OutputBounds {
+            outputs: vec![Interval::new(0.0, 1.0), Interval::new(0.0, 1.0)],
+            diff: vec![vec![Interval::ZERO, diff01], vec![-diff01, Interval::ZERO]],
+        }
+    }
+
+    #[test]
+    fn ties_go_to_the_lowest_index() {
+        // numpy.argmax([1, 1]) == 0 (numpy documentation: "the indices corresponding to
+        // the first occurrence are returned").
+        assert_eq!(pick(&[1.0, 1.0], Decision::Argmax), 0);
+        assert_eq!(pick(&[1.0, 3.0, 3.0], Decision::Argmax), 1);
+        assert_eq!(pick(&[2.0, 1.0, 1.0], Decision::Argmin), 1);
+        // y0 − y1 ∈ [0, 1]: y0 ≥ y1 always, and ties go to 0, so only 0 is possible.
+        assert_eq!(possible_commands(&bounds(Interval::new(0.0, 1.0)), Decision::Argmax), vec![0]);
+        // y0 − y1 ∈ [−1, 0]: y1 ≥ y0, but a tie picks 0: both possible.
+        assert_eq!(possible_commands(&bounds(Interval::new(-1.0, 0.0)), Decision::Argmax), vec![0, 1]);
+        // y0 − y1 ∈ [−1, −0.5]: only 1.
+        assert_eq!(possible_commands(&bounds(Interval::new(-1.0, -0.5)), Decision::Argmax), vec![1]);
+        assert_eq!(possible_commands(&bounds(Interval::UNDEFINED), Decision::Argmax), vec![0, 1]);
+        // argmin: y0 − y1 ∈ [−1, 0] ⇒ y0 ≤ y1, tie to 0: only 0.
+        assert_eq!(possible_commands(&bounds(Interval::new(-1.0, 0.0)), Decision::Argmin), vec![0]);
+    }
+}

@@ -1,0 +1,278 @@
+//! Closed-loop reachability of one cell: the proof attempt.
+//!
+//! Guarantee: [`prove`] returns `Proof::Safe` only if every trajectory from the cell,
+//! for every disturbance signal and observation noise allowed by the spec and every
+//! command the controller could pick (the network's decision bounded soundly), stays
+//! out of the unsafe set on [0, H·T]. The analysis keeps a tree over commands: at
+//! each period every branch holds a set of states and the previous command; the
+//! network's outputs are bounded over the observation enclosure; each command not
+//! ruled out by the bounds opens a child branch with the plant integrated under its
+//! inputs. When too many branches are alive, branches with the same previous command
+//! are joined (a sound over-approximation of their union), which keeps the tree's
+//! width bounded by the number of commands.
+
+use super::affine::StateSet;
+use super::closed_loop::{possible_commands, ClosedLoop};
+use super::interval::Interval;
+use super::spec::{BoundsMethod, SetKind};
+use super::verdict::{Reason, SplitHint, Stats};
+use std::time::Instant;
+
+/// Outcome of one proof attempt.
+pub enum Proof {
+    Safe,
+    Failed(Failure),
+}
+
+/// Why a proof attempt failed, and what blocked it.
+pub struct Failure {
+    pub reason: Reason,
+    pub detail: String,
+    pub split_hint: Option<SplitHint>,
+    /// A point of the cell the failure points at (for the falsifier), if any.
+    pub suspect: Option<Vec<f64>>,
+    pub suspect_command: Option<usize>,
+}
+
+struct Branch {
+    set: StateSet,
+    /// The command decided in the previous period (c_{k−1}).
+    prev: usize,
+    /// The initial command this branch descends from.
+    root: usize,
+}
+
+/// Sensitivity of a blocking quantity to each split dimension, read from the
+/// coefficients of its affine form on the initial symbols (symbol i ↔ state i).
+fn hint_from_coeffs(cl: &ClosedLoop, cell: &[Interval], coeff: impl Fn(usize) -> f64) -> Option<SplitHint> {
+    let spec = &cl.spec;
+    let mut best: Option<(usize, f64)> = None;
+    let mut total = 0.0;
+    for &d in &spec.split {
+        if !(cell[d].width() > 0.0) {
+            continue;
+        }
+        let c = coeff(d).abs();
+        total += c;
+        if c.is_finite() && best.is_none_or(|(_, b)| c > b) {
+            best = Some((d, c));
+        }
+    }
+    match best {
+        Some((d, c)) if c > 0.0 && total > 0.0 => Some(SplitHint { dim: spec.states[d].clone(), score: c / total }),
+        _ => None,
+    }
+}
+
+/// The widest split dimension relative to the envelope (the fallback rule).
+pub fn widest_normalized(cl: &ClosedLoop, cell: &[Interval]) -> SplitHint {
+    let spec = &cl.spec;
+    let mut best = spec.split[0];
+    let mut best_w = -1.0;
+    for &d in &spec.split {
+        let env_w = spec.envelope[d].width();
+        let w = if env_w > 0.0 { cell[d].width() / env_w } else { 0.0 };
+        if w > best_w {
+            best_w = w;
+            best = d;
+        }
+    }
+    SplitHint { dim: spec.states[best].clone(), score: 0.0 }
+}
+
+/// Attempt to prove the cell safe. Timing and tree statistics go into `stats`.
+pub fn prove(cl: &ClosedLoop, cell: &[Interval], started: Instant, stats: &mut Stats) -> Proof {
+    let spec = &cl.spec;
+    let opts = &spec.engine;
+    let n = spec.states.len();
+    let max_gens = (opts.generators_per_dim as usize) * n;
+    let mut frontier: Vec<Branch> = spec
+        .initial_commands
+        .iter()
+        .map(|&c| Branch { set: StateSet::from_box(cell), prev: c, root: c })
+        .collect();
+    // Sensitivity of the observations that left a decision open (for the node budget).
+    let mut ambiguity_hint: Option<SplitHint> = None;
+
+    for k in 0..spec.horizon {
+        let mut next: Vec<Branch> = Vec::new();
+        for br in &frontier {
+            stats.tree_nodes += 1;
+            if stats.tree_nodes > opts.node_budget {
+                return Proof::Failed(Failure {
+                    reason: Reason::NodeBudget,
+                    detail: format!("command tree passed {} nodes at period {k}", opts.node_budget),
+                    split_hint: ambiguity_hint.clone(),
+                    suspect: None,
+                    suspect_command: None,
+                });
+            }
+            if started.elapsed().as_secs_f64() > opts.time_budget_s {
+                return Proof::Failed(Failure {
+                    reason: Reason::TimeBudget,
+                    detail: format!("time budget of {} s spent at period {k}", opts.time_budget_s),
+                    split_hint: ambiguity_hint.clone(),
+                    suspect: None,
+                    suspect_command: None,
+                });
+            }
+
+            // The decision: bound the network over the observation enclosure.
+            let t_net = Instant::now();
+            let obs_forms: Vec<_> = spec.observations.iter().map(|o| br.set.eval_affine(&o.expr)).collect();
+            let obs: Vec<Interval> =
+                obs_forms.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
+            let input = cl.network_input(&obs);
+            let mut choices = Vec::new();
+            let methods: &[BoundsMethod] = match opts.bounds {
+                BoundsMethod::Portfolio => &[BoundsMethod::Interval, BoundsMethod::Symbolic],
+                BoundsMethod::Interval => &[BoundsMethod::Interval],
+                BoundsMethod::Symbolic => &[BoundsMethod::Symbolic],
+            };
+            for m in methods {
+                let b = cl.bound_outputs(br.prev, &input, *m);
+                choices = possible_commands(&b, spec.decision);
+                if choices.len() == 1 {
+                    break;
+                }
+            }
+            stats.network_ms += t_net.elapsed().as_secs_f64() * 1e3;
+            if choices.len() > 1 && ambiguity_hint.is_none() {
+                ambiguity_hint = hint_from_coeffs(cl, cell, |d| {
+                    obs_forms.iter().enumerate().map(|(j, f)| f.coeff(d) / spec.scale[j]).map(f64::abs).sum()
+                });
+            }
+
+            // One child per possible command; with latency 1 the plant does not depend
+            // on the decision, so integrate once.
+            let mut flows: Vec<(usize, super::plant::PeriodFlow)> = Vec::new();
+            for &c in &choices {
+                let applied = cl.applied(c, br.prev);
+                if !flows.iter().any(|(a, _)| *a == applied) {
+                    let t_plant = Instant::now();
+                    let flow = cl.plant.integrate_period(
+                        &br.set,
+                        &spec.commands[applied].inputs,
+                        &spec.disturbance_ranges,
+                        spec.period,
+                        opts,
+                    );
+                    stats.plant_ms += t_plant.elapsed().as_secs_f64() * 1e3;
+                    let flow = match flow {
+                        Ok(f) => f,
+                        Err(e) => {
+                            return Proof::Failed(Failure {
+                                reason: Reason::IntegrationFailed,
+                                detail: format!("period {k}, command '{}': {e}", spec.commands[applied].name),
+                                split_hint: hint_from_box(cl, cell),
+                                suspect: Some(cell.iter().map(|i| i.mid()).collect()),
+                                suspect_command: Some(br.root),
+                            })
+                        }
+                    };
+                    if let Some(f) = check_tube(cl, cell, &flow, k, applied) {
+                        return Proof::Failed(Failure { suspect_command: Some(br.root), ..f });
+                    }
+                    flows.push((applied, flow));
+                }
+                let flow = &flows.iter().find(|(a, _)| *a == cl.applied(c, br.prev)).unwrap().1;
+                let mut set = match opts.set {
+                    SetKind::Affine => flow.end.clone(),
+                    SetKind::Box => StateSet::from_box(&flow.end.to_box()),
+                };
+                set.reduce(max_gens);
+                next.push(Branch { set, prev: c, root: br.root });
+            }
+        }
+        // Keep the width bounded: join branches that share their previous command.
+        if next.len() > opts.join_above as usize {
+            next = join_by_command(next, max_gens);
+        }
+        stats.max_branches = stats.max_branches.max(next.len() as u64);
+        frontier = next;
+        stats.periods_reached = k + 1;
+    }
+    Proof::Safe
+}
+
+fn hint_from_box(cl: &ClosedLoop, cell: &[Interval]) -> Option<SplitHint> {
+    Some(widest_normalized(cl, cell))
+}
+
+/// Check every tube piece against every unsafe region; a failure names the first
+/// region that could not be excluded and the state the split should cut.
+fn check_tube(
+    cl: &ClosedLoop,
+    cell: &[Interval],
+    flow: &super::plant::PeriodFlow,
+    k: u32,
+    applied: usize,
+) -> Option<Failure> {
+    let spec = &cl.spec;
+    for piece in &flow.tube {
+        for (r, conj) in spec.unsafe_set.iter().enumerate() {
+            // The region is excluded when one of its constraints g ≤ 0 provably fails
+            // (g > 0) over the piece. Interval evaluation on the hull first (cheap),
+            // then affine evaluation (keeps dependencies).
+            let excluded = conj.iter().any(|c| c.g.eval_interval(&piece.hull).lo() > 0.0)
+                || conj.iter().any(|c| piece.enclosure.eval_affine(&c.g).range().lo() > 0.0);
+            if excluded {
+                continue;
+            }
+            // Blocking quantity: the constraint of the region closest to being excluded.
+            let forms: Vec<_> = conj.iter().map(|c| piece.enclosure.eval_affine(&c.g)).collect();
+            let best = forms
+                .iter()
+                .enumerate()
+                .max_by(|a, b| a.1.range().lo().partial_cmp(&b.1.range().lo()).unwrap_or(std::cmp::Ordering::Equal))
+                .map(|(i, _)| i)
+                .unwrap_or(0);
+            let form = &forms[best];
+            let hint = hint_from_coeffs(cl, cell, |d| form.coeff(d)).or_else(|| hint_from_box(cl, cell));
+            // The initial point whose image the blocking constraint is lowest at: move
+            // each initial symbol to the sign that decreases g.
+            let suspect: Vec<f64> = (0..spec.states.len())
+                .map(|d| {
+                    let c = form.coeff(d);
+                    let x = cell[d];
+                    if c > 0.0 {
+                        x.lo()
+                    } else if c < 0.0 {
+                        x.hi()
+                    } else {
+                        x.mid()
+                    }
+                })
+                .collect();
+            return Some(Failure {
+                reason: Reason::UnsafeNotExcluded,
+                detail: format!(
+                    "unsafe region {r} ({}) not excluded in period {k} at t ∈ [{:.4}, {:.4}] s under command '{}'",
+                    conj.iter().map(|c| c.text.as_str()).collect::<Vec<_>>().join(" and "),
+                    k as f64 * spec.period + piece.t.lo(),
+                    k as f64 * spec.period + piece.t.hi(),
+                    spec.commands[applied].name
+                ),
+                split_hint: hint,
+                suspect: Some(suspect),
+                suspect_command: None,
+            });
+        }
+    }
+    None
+}
+
+/// Join branches with the same previous command into one set each.
+fn join_by_command(branches: Vec<Branch>, max_gens: usize) -> Vec<Branch> {
+    let mut out: Vec<Branch> = Vec::new();
+    for b in branches {
+        match out.iter_mut().find(|o| o.prev == b.prev) {
+            Some(o) => {
+                o.set = o.set.join(&b.set);
+                o.set.reduce(max_gens);
+            }
+            None => out.push(b),
+        }
+    }
+    out
+}

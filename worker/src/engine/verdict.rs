@@ -1,0 +1,108 @@
+//! The verdict of one cell: the JSON that travels back to the server.
+
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum VerdictKind {
+    /// Proof: no trajectory from the cell reaches the unsafe set within the horizon.
+    Safe,
+    /// A re-checked counterexample starts in the cell.
+    Unsafe,
+    /// Neither; see `reason` and `split_hint`.
+    Inconclusive,
+}
+
+/// Why a cell is inconclusive.
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum Reason {
+    /// The command tree grew past `engine.node_budget`.
+    NodeBudget,
+    /// The cell took longer than `engine.time_budget_s`.
+    TimeBudget,
+    /// Some enclosure may meet the unsafe set.
+    UnsafeNotExcluded,
+    /// The decision stayed open on too many branches (reported with the node budget
+    /// when ambiguity caused the growth).
+    DecisionAmbiguous,
+    /// The validated integrator could not enclose a period (step limit, blow-up or a
+    /// value outside a function's domain).
+    IntegrationFailed,
+}
+
+/// Where to cut an inconclusive cell: the state whose halving most reduces the
+/// uncertainty that blocked the proof, with a score in [0, 1] (the share of that
+/// uncertainty carried by the state; 0 when the fallback rule chose).
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct SplitHint {
+    pub dim: String,
+    pub score: f64,
+}
+
+/// One sampled point of a counterexample trajectory.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct TrajectoryPoint {
+    pub t: f64,
+    pub x: Vec<f64>,
+}
+
+/// A concrete trajectory that enters the unsafe set, re-checked by validated
+/// integration before it is reported.
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct Counterexample {
+    /// Initial state, by state name.
+    pub initial_state: BTreeMap<String, f64>,
+    /// The command c₋₁ the tree started from.
+    pub initial_command: String,
+    /// Disturbance values per period (held constant within a period), by name.
+    pub disturbances: BTreeMap<String, Vec<f64>>,
+    /// Observation noise per period, by observation name.
+    pub noise: BTreeMap<String, Vec<f64>>,
+    /// The command decided at each period k = 0, 1, ….
+    pub commands: Vec<String>,
+    /// Sampled states of the fine simulation up to the entry.
+    pub trajectory: Vec<TrajectoryPoint>,
+    /// A time at which the trajectory is inside the unsafe set (from the simulation).
+    pub entry_time: f64,
+    /// The time range over which the validated re-check proved the state unsafe.
+    pub proven_unsafe_during: [f64; 2],
+    /// Index of the unsafe region (conjunction) entered.
+    pub unsafe_region: usize,
+}
+
+#[derive(Clone, Debug, Default, Serialize, Deserialize, PartialEq)]
+pub struct Stats {
+    /// Nodes (branch × period) of the command tree explored.
+    pub tree_nodes: u64,
+    /// Periods the proof attempt completed on every branch.
+    pub periods_reached: u32,
+    /// Largest number of live branches in one period.
+    pub max_branches: u64,
+    pub wall_ms: f64,
+    pub plant_ms: f64,
+    pub network_ms: f64,
+    pub falsify_ms: f64,
+    /// Simulated trajectories tried by the falsifier.
+    pub simulations: u64,
+}
+
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
+pub struct Verdict {
+    pub verdict: VerdictKind,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reason: Option<Reason>,
+    /// Human-readable detail of the reason (which region, which period).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub detail: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub split_hint: Option<SplitHint>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub counterexample: Option<Counterexample>,
+    pub stats: Stats,
+    /// Version of the engine that produced the verdict.
+    pub engine_version: String,
+}
+
+pub const ENGINE_VERSION: &str = env!("CARGO_PKG_VERSION");
