@@ -80,8 +80,26 @@ pub fn widest_normalized(cl: &ClosedLoop, cell: &[Interval]) -> SplitHint {
     SplitHint { dim: spec.states[best].clone(), score: 0.0 }
 }
 
+/// Per-period record of the branches (for tests): at index k, the state sets at time
+/// (k+1)·T as boxes, with the command decided in period k (the branch's `prev`).
+#[derive(Default, Debug)]
+pub struct Trace {
+    pub periods: Vec<Vec<(usize, Vec<Interval>)>>,
+}
+
 /// Attempt to prove the cell safe. Timing and tree statistics go into `stats`.
 pub fn prove(cl: &ClosedLoop, cell: &[Interval], started: Instant, stats: &mut Stats) -> Proof {
+    prove_traced(cl, cell, started, stats, None)
+}
+
+/// [`prove`], recording every branch's set at the end of every period into `trace`.
+pub fn prove_traced(
+    cl: &ClosedLoop,
+    cell: &[Interval],
+    started: Instant,
+    stats: &mut Stats,
+    mut trace: Option<&mut Trace>,
+) -> Proof {
     let spec = &cl.spec;
     let opts = &spec.engine;
     let n = spec.states.len();
@@ -189,6 +207,9 @@ pub fn prove(cl: &ClosedLoop, cell: &[Interval], started: Instant, stats: &mut S
             next = join_by_command(next, max_gens);
         }
         stats.max_branches = stats.max_branches.max(next.len() as u64);
+        if let Some(t) = trace.as_deref_mut() {
+            t.periods.push(next.iter().map(|b| (b.prev, b.set.to_box())).collect());
+        }
         frontier = next;
         stats.periods_reached = k + 1;
     }
