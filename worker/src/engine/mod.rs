@@ -4,4 +4,5 @@
 
 pub mod expr;
 pub mod interval;
+pub mod net;
 pub mod spec;
