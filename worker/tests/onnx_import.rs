@@ -78,8 +78,7 @@ fn floats(v: &Value) -> Vec<f64> {
 
 #[test]
 fn evaluation_matches_onnxruntime() {
-    let dir = common::temp_dir("onnx-cases");
-    common::run_reference("onnx_cases.py", &[dir.to_str().unwrap()]);
+    let dir = common::onnx_cases();
     let manifest: Value = serde_json::from_str(&std::fs::read_to_string(dir.join("manifest.json")).unwrap()).unwrap();
     let models = manifest["models"].as_array().unwrap();
     assert!(models.len() >= 30, "the reference script should build many models");
@@ -117,8 +116,7 @@ fn evaluation_matches_onnxruntime() {
 
 #[test]
 fn bad_models_are_rejected_naming_the_node() {
-    let dir = common::temp_dir("onnx-bad");
-    common::run_reference("onnx_cases.py", &[dir.to_str().unwrap()]);
+    let dir = common::onnx_cases();
     let manifest: Value = serde_json::from_str(&std::fs::read_to_string(dir.join("manifest.json")).unwrap()).unwrap();
     let bad = manifest["bad"].as_array().unwrap();
     assert!(bad.len() >= 8);
@@ -135,8 +133,7 @@ fn bad_models_are_rejected_naming_the_node() {
 
 #[test]
 fn random_and_truncated_bytes_never_panic() {
-    let dir = common::temp_dir("onnx-fuzz");
-    common::run_reference("onnx_cases.py", &[dir.to_str().unwrap()]);
+    let dir = common::onnx_cases();
     let valid = std::fs::read(dir.join("matmul_f64_raw1.onnx")).unwrap();
     assert!(load_onnx(&valid).is_ok());
     let mut rng = common::Rng(7);
@@ -174,8 +171,7 @@ fn kinds(net: &Network) -> String {
 
 #[test]
 fn affine_operators_are_merged_only_when_exact() {
-    let dir = common::temp_dir("onnx-fold");
-    common::run_reference("onnx_cases.py", &[dir.to_str().unwrap()]);
+    let dir = common::onnx_cases();
     let load = |f: &str| load_onnx(&std::fs::read(dir.join(f)).unwrap()).unwrap();
     // MatMul+Add, MatMul+Sub and Gemm(alpha = beta = 1)+bias each become one dense
     // layer; Sub(c, x) after tanh has nothing to merge into and stays a layer.

@@ -55,3 +55,13 @@ pub fn temp_dir(name: &str) -> PathBuf {
     std::fs::create_dir_all(&dir).expect("create temp dir");
     dir
 }
+
+/// The directory written by `tests/reference/onnx_cases.py`, built once per test binary.
+pub fn onnx_cases() -> &'static PathBuf {
+    static DIR: std::sync::OnceLock<PathBuf> = std::sync::OnceLock::new();
+    DIR.get_or_init(|| {
+        let dir = temp_dir("onnx-cases");
+        run_reference("onnx_cases.py", &[dir.to_str().unwrap()]);
+        dir
+    })
+}

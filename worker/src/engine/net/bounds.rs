@@ -435,7 +435,7 @@ mod tests {
         // The raw backward pass, before any intersection, gives the hand numbers
         // (−2 and −3.5) up to the rigorous rounding allowance (a few ulps).
         let vals = interval_values(&net, &input);
-        let lows = backward(&net, &vals, 2, array![[1.0], [-1.0]]);
+        let lows = backward(&net, &vals, 3, array![[1.0], [-1.0]]);
         assert!(lows[0] <= -2.0 && lows[0] > -2.0 - 1e-12, "{}", lows[0]);
         assert!(lows[1] <= -3.5 && lows[1] > -3.5 - 1e-12, "{}", lows[1]);
         let sym = output_bounds(&net, &input, BoundsMethod::Symbolic);
