@@ -3,7 +3,9 @@
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;
 use std::process::ExitCode;
-use tessera_worker::engine::spec;
+use tessera_worker::engine::interval::Interval;
+use tessera_worker::engine::net::{self, OutputBounds};
+use tessera_worker::engine::spec::{self, BoundsMethod};
 
 #[derive(Parser)]
 #[command(name = "tessera-worker", version, about = "Tessera worker: sound reachability of campaign cells")]
@@ -22,12 +24,119 @@ enum Cmd {
         #[arg(long)]
         json: bool,
     },
+    /// Bound a network's outputs, and the differences of its outputs, over a box of inputs.
+    Bounds {
+        /// The network (ONNX file).
+        model: PathBuf,
+        /// Lower corner of the input box, comma-separated (one number per input).
+        #[arg(long, allow_hyphen_values = true)]
+        lower: String,
+        /// Upper corner of the input box, comma-separated.
+        #[arg(long, allow_hyphen_values = true)]
+        upper: String,
+        /// How to bound: interval, symbolic or portfolio.
+        #[arg(long, default_value = "symbolic", value_parser = parse_method)]
+        method: BoundsMethod,
+        /// Print the result as JSON: {"lower","upper","diff_lower","diff_upper"}.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+fn parse_method(s: &str) -> Result<BoundsMethod, String> {
+    match s {
+        "interval" => Ok(BoundsMethod::Interval),
+        "symbolic" => Ok(BoundsMethod::Symbolic),
+        "portfolio" => Ok(BoundsMethod::Portfolio),
+        _ => Err(format!("unknown method '{s}' (expected interval, symbolic or portfolio)")),
+    }
 }
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
     match cli.cmd {
         Cmd::Validate { spec, json } => validate(&spec, json),
+        Cmd::Bounds { model, lower, upper, method, json } => match bounds(&model, &lower, &upper, method) {
+            Ok(b) => {
+                print_bounds(&b, json);
+                ExitCode::SUCCESS
+            }
+            Err(msg) => {
+                eprintln!("error: {msg}");
+                ExitCode::from(2)
+            }
+        },
+    }
+}
+
+fn parse_numbers(text: &str, what: &str) -> Result<Vec<f64>, String> {
+    text.split(',')
+        .enumerate()
+        .map(|(i, t)| match t.trim().parse::<f64>() {
+            Ok(v) if v.is_finite() => Ok(v),
+            _ => Err(format!("--{what}: entry {} ('{}') is not a finite number", i + 1, t.trim())),
+        })
+        .collect()
+}
+
+fn bounds(model: &PathBuf, lower: &str, upper: &str, method: BoundsMethod) -> Result<OutputBounds, String> {
+    let bytes = std::fs::read(model).map_err(|e| format!("cannot read {}: {e}", model.display()))?;
+    let net = net::load_onnx(&bytes).map_err(|e| format!("{}: {e}", model.display()))?;
+    let lo = parse_numbers(lower, "lower")?;
+    let hi = parse_numbers(upper, "upper")?;
+    for (what, v) in [("lower", &lo), ("upper", &hi)] {
+        if v.len() != net.input_dim() {
+            return Err(format!("--{what} has {} numbers but the network takes {} inputs", v.len(), net.input_dim()));
+        }
+    }
+    let mut input = Vec::with_capacity(lo.len());
+    for (i, (&a, &b)) in lo.iter().zip(&hi).enumerate() {
+        if a > b {
+            return Err(format!("input {}: lower bound {a} is above upper bound {b}", i + 1));
+        }
+        input.push(Interval::new(a, b));
+    }
+    Ok(net::output_bounds(&net, &input, method))
+}
+
+#[derive(serde::Serialize)]
+struct BoundsJson {
+    lower: Vec<f64>,
+    upper: Vec<f64>,
+    diff_lower: Vec<Vec<f64>>,
+    diff_upper: Vec<Vec<f64>>,
+}
+
+fn print_bounds(b: &OutputBounds, json: bool) {
+    if json {
+        // Infinite (vacuous) ends print as null, since JSON has no infinity.
+        let out = BoundsJson {
+            lower: b.outputs.iter().map(|i| i.lo()).collect(),
+            upper: b.outputs.iter().map(|i| i.hi()).collect(),
+            diff_lower: b.diff.iter().map(|r| r.iter().map(|i| i.lo()).collect()).collect(),
+            diff_upper: b.diff.iter().map(|r| r.iter().map(|i| i.hi()).collect()).collect(),
+        };
+        println!("{}", serde_json::to_string(&out).expect("numbers serialise"));
+        return;
+    }
+    println!("output  lower                     upper");
+    for (i, o) in b.outputs.iter().enumerate() {
+        println!("y{i:<6} {:<25e} {:<25e}", o.lo(), o.hi());
+    }
+    if b.outputs.len() > 1 {
+        println!("\ndifferences y_i - y_j (lower, upper):");
+        for (i, row) in b.diff.iter().enumerate() {
+            for (j, d) in row.iter().enumerate().filter(|(j, _)| *j != i) {
+                let verdict = if d.lo() > 0.0 {
+                    "  y_i > y_j on the whole box"
+                } else if d.hi() < 0.0 {
+                    "  y_i < y_j on the whole box"
+                } else {
+                    ""
+                };
+                println!("  y{i} - y{j}: [{:e}, {:e}]{verdict}", d.lo(), d.hi());
+            }
+        }
     }
 }
 

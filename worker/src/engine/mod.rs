@@ -4,6 +4,7 @@
 
 pub mod expr;
 pub mod interval;
+pub mod net;
 pub mod spec;
 pub mod verdict;
 // Closed loop, proof, falsifier and cell check: wired in once the plant and network

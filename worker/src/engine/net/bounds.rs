@@ -1,0 +1,478 @@
+//! Sound bounds on a network's outputs, and on the differences of its outputs, over a
+//! box of inputs.
+//!
+//! # Methods
+//!
+//! * [`BoundsMethod::Interval`]: interval bound propagation — every layer is evaluated
+//!   in outward-rounded interval arithmetic.
+//! * [`BoundsMethod::Symbolic`]: backward linear bound propagation. To bound `c·v` for
+//!   the value `v` after some layer, a linear form `Λ·v_k + d` that is a valid lower
+//!   bound is pushed backwards through the layers to the input box, where it is
+//!   evaluated in interval arithmetic. Affine layers are passed exactly (up to the
+//!   rounding accounted for below); a ReLU neuron with pre-activation bounds `l < 0 < u`
+//!   is replaced by the standard linear relaxations of ReLU from the published
+//!   literature on linear bound propagation (common practice): the triangle upper bound
+//!   `relu(z) ≤ u·(z − l)/(u − l)` where the coefficient is negative, and the lower
+//!   bound `relu(z) ≥ α·z` with `α = 1` if `u ≥ −l`, else `α = 0` (the adaptive choice)
+//!   where it is positive. Pre-activation bounds of every ReLU layer are computed by the
+//!   same backward pass (only for neurons whose interval bounds straddle 0) and
+//!   intersected with their interval bounds. Output differences `y_i − y_j` are bounded
+//!   directly with the objective `e_i − e_j`, which is tighter than subtracting output
+//!   bounds. Sigmoid and tanh layers are not relaxed: the backward pass stops at them
+//!   and uses their interval bounds (sound, looser). The result is intersected with
+//!   the interval result, so it is never wider.
+//! * [`BoundsMethod::Portfolio`]: interval first; symbolic only when the interval
+//!   bounds leave the order of some pair of outputs undecided (a difference holds 0).
+//!
+//! # Soundness with floating point
+//!
+//! The weights are exact reals (f64 numbers); the guarantee is about the real-arithmetic
+//! network. Every f64 operation that affects a bound is accounted for:
+//!
+//! 1. *Affine layer* `z = W·a + b`. The backward pass needs `Λ·W`; it computes
+//!    `M = fl(Λ·W)` with an ordinary matrix product. For any order of summation, with
+//!    or without FMA, `|M − Λ·W| ≤ γ_n·|Λ|·|W| + n·η` entry-wise, where `n` is the
+//!    inner dimension, `γ_n = n·u/(1 − n·u)`, `u = 2⁻⁵³` (the standard error bound of
+//!    floating-point dot products) and `η = 2⁻¹⁰⁷⁴` covers underflowing products.
+//!    Hence for every `a` with `|a| ≤ amax` (known from the bounds of `a`):
+//!    `Λ·W·a ≥ M·a − γ_n·|Λ|·(|W|·amax) − n·η·Σ amax`, and the error term is computed
+//!    rounding upward and subtracted from the constant. `Λ·b` is evaluated in interval
+//!    arithmetic and its lower end taken.
+//! 2. *ReLU*. For ANY float coefficient `λ'` we choose, the function
+//!    `g(z) = λ·relu(z) − λ'·z` is piecewise linear with its only kink at 0, so its
+//!    minimum over `[l, u]` is attained at `l`, `u` or `0`. Evaluating `g` at those
+//!    points in interval arithmetic and taking the lowest lower end gives an offset
+//!    `d` with `λ·relu(z) ≥ λ'·z + d` on `[l, u]` — rigorous whatever rounding went
+//!    into the choice of `λ'` (the relaxation only *chooses* `λ'`).
+//! 3. *Concretisation*: `Λ·x` over the input box is evaluated in interval arithmetic.
+//!    All additions into the constant are rounded down.
+//!
+//! Upper bounds are `−(lower bound of −objective)`. Any NaN met in a bound becomes an
+//! infinite (vacuous) bound, never a finite one.
+
+use super::{Layer, Network};
+use crate::engine::interval::Interval;
+use crate::engine::spec::BoundsMethod;
+use ndarray::{Array2, ArrayView1};
+
+/// Bounds over a box of inputs: `outputs[i] ∋ y_i(x)` and `diff[i][j] ∋ y_i(x) − y_j(x)`
+/// for every real `x` in the box (`diff[i][i]` is exactly 0).
+#[derive(Clone, Debug, PartialEq)]
+pub struct OutputBounds {
+    pub outputs: Vec<Interval>,
+    pub diff: Vec<Vec<Interval>>,
+}
+
+impl OutputBounds {
+    /// True when every pair of outputs is ordered over the whole box (no `diff[i][j]`
+    /// with `i ≠ j` holds 0), so the arg-max of the outputs is the same everywhere.
+    pub fn orders_all_pairs(&self) -> bool {
+        self.diff.iter().enumerate().all(|(i, row)| {
+            row.iter().enumerate().all(|(j, d)| i == j || !(d.lo() <= 0.0 && 0.0 <= d.hi()) && !d.is_undefined())
+        })
+    }
+}
+
+/// Enclosures of the network's outputs and output differences for all inputs in the
+/// box `input` (one interval per input), by the chosen method.
+///
+/// Guarantee: for every real point `x` of the box, the real-arithmetic network value
+/// `y(x)` satisfies `y_i(x) ∈ outputs[i]` and `y_i(x) − y_j(x) ∈ diff[i][j]`. An
+/// undefined input interval gives undefined bounds. Panics if
+/// `input.len() != net.input_dim()` (a caller's error).
+pub fn output_bounds(net: &Network, input: &[Interval], method: BoundsMethod) -> OutputBounds {
+    assert_eq!(input.len(), net.input_dim(), "network takes {} inputs, got {}", net.input_dim(), input.len());
+    if input.iter().any(|i| i.is_undefined()) {
+        let m = net.output_dim();
+        return OutputBounds {
+            outputs: vec![Interval::UNDEFINED; m],
+            diff: vec![vec![Interval::UNDEFINED; m]; m],
+        };
+    }
+    match method {
+        BoundsMethod::Interval => interval_bounds(net, input),
+        BoundsMethod::Symbolic => symbolic_bounds(net, input, &interval_bounds(net, input)),
+        BoundsMethod::Portfolio => {
+            let ib = interval_bounds(net, input);
+            if ib.orders_all_pairs() {
+                ib
+            } else {
+                symbolic_bounds(net, input, &ib)
+            }
+        }
+    }
+}
+
+// ---------------------------------------------------------------------------
+// Interval bound propagation
+// ---------------------------------------------------------------------------
+
+/// The interval image of one layer (outward rounded, so it encloses the real image).
+fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
+    match layer {
+        Layer::Dense { w, b } => w
+            .rows()
+            .into_iter()
+            .zip(b.iter())
+            .map(|(row, &bi)| row.iter().zip(a).fold(Interval::point(bi), |s, (&wij, &aj)| s + aj.scale(wij)))
+            .collect(),
+        Layer::Relu => a.iter().map(|x| x.max(Interval::ZERO)).collect(),
+        Layer::Sigmoid => a
+            .iter()
+            .map(|x| {
+                // σ(x) = 1 / (1 + e^(−x)) in interval arithmetic; σ maps into [0, 1].
+                let s = Interval::ONE / (Interval::ONE + x.neg().exp());
+                if s.is_undefined() {
+                    return s;
+                }
+                Interval::new(s.lo().max(0.0), s.hi().min(1.0))
+            })
+            .collect(),
+        Layer::Tanh => a.iter().map(|x| x.tanh()).collect(),
+    }
+}
+
+/// Bounds of every value of the chain: `v[0]` is the input box, `v[k + 1]` the image
+/// of layer `k`.
+fn interval_values(net: &Network, input: &[Interval]) -> Vec<Vec<Interval>> {
+    let mut v = vec![input.to_vec()];
+    for layer in net.layers() {
+        let next = forward_layer(layer, v.last().expect("starts with the input"));
+        v.push(next);
+    }
+    v
+}
+
+fn differences(outputs: &[Interval]) -> Vec<Vec<Interval>> {
+    outputs
+        .iter()
+        .enumerate()
+        .map(|(i, &a)| outputs.iter().enumerate().map(|(j, &b)| if i == j { Interval::ZERO } else { a - b }).collect())
+        .collect()
+}
+
+fn interval_bounds(net: &Network, input: &[Interval]) -> OutputBounds {
+    let outputs = interval_values(net, input).pop().expect("at least the input");
+    let diff = differences(&outputs);
+    OutputBounds { outputs, diff }
+}
+
+// ---------------------------------------------------------------------------
+// Backward linear bound propagation
+// ---------------------------------------------------------------------------
+
+/// Unit roundoff of f64 (round to nearest).
+const U: f64 = 1.0 / 9007199254740992.0; // 2⁻⁵³
+/// Smallest positive subnormal: bounds the absolute error of an underflowing product.
+const ETA: f64 = 4.9406564584124654e-324; // 2⁻¹⁰⁷⁴
+
+/// An upper bound on `γ_n = n·u / (1 − n·u)`.
+fn gamma(n: usize) -> f64 {
+    let nu = Interval::point(n as f64 * U); // exact: an integer times a power of two
+    (nu / (Interval::ONE - nu)).hi()
+}
+
+/// An upper bound on `Σ_j a_j·x_j` for non-negative `a`, `x`: the computed sum is
+/// within `γ_n·exact + n·η` of the exact one, so `exact ≤ (fl + n·η)/(1 − γ_n)`, and
+/// `1/(1 − γ) ≤ 1 + 2γ` for `γ ≤ 1/2`; each step below rounds up.
+fn nonneg_dot_upper(a: ArrayView1<f64>, x: &[f64]) -> f64 {
+    let n = x.len();
+    let s: f64 = a.iter().zip(x).map(|(&ai, &xi)| ai.abs() * xi).sum();
+    let g = gamma(n);
+    assert!(g <= 0.5, "dimension too large for the error bound");
+    let s = (s + n as f64 * ETA).next_up();
+    (s * (1.0 + 2.0 * g).next_up()).next_up()
+}
+
+/// A lower end that is −∞ when the interval is undefined (NaN never proves anything).
+fn lower(i: Interval) -> f64 {
+    if i.is_undefined() {
+        f64::NEG_INFINITY
+    } else {
+        i.lo()
+    }
+}
+
+/// `a + b` rounded down (a lower bound of the exact sum); NaN becomes −∞.
+fn add_down(a: f64, b: f64) -> f64 {
+    let s = a + b;
+    if s.is_nan() {
+        f64::NEG_INFINITY
+    } else {
+        s.next_down()
+    }
+}
+
+/// Lower bounds, valid for every input in the box, of each row `r` of `obj·v[top]`,
+/// where `v[top]` is the value after the first `top` layers.
+///
+/// Invariant kept while walking layers `top−1, …, 0`: for every input in the box,
+/// `obj_r·v[top] ≥ lam_r·v[k] + d_r`, where `v[k]` is the value entering layer `k`.
+/// `vals[k]` must enclose `v[k]` (the ReLU inputs with their tightened bounds).
+fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>) -> Vec<f64> {
+    let rows = obj.nrows();
+    let mut lam = obj;
+    let mut d = vec![0.0f64; rows];
+    // Where the pass ends: the input, or the output of the topmost sigmoid/tanh.
+    let mut stop = 0;
+    for k in (0..top).rev() {
+        match &net.layers()[k] {
+            Layer::Dense { w, b } => {
+                // lam·(W·a + b) = (lam·W)·a + lam·b, with lam·W rounded (step 1 above).
+                let amax: Vec<f64> = vals[k].iter().map(|i| if i.is_undefined() { f64::INFINITY } else { i.mag() }).collect();
+                if amax.iter().any(|v| !v.is_finite()) {
+                    return vec![f64::NEG_INFINITY; rows];
+                }
+                let n = w.nrows(); // inner dimension of lam·W
+                let w_amax: Vec<f64> = w.rows().into_iter().map(|row| nonneg_dot_upper(row, &amax)).collect();
+                let sum_amax = amax.iter().fold(0.0f64, |s, &v| (s + v).next_up());
+                let underflow = (n as f64 * ETA * sum_amax).next_up() + ETA;
+                let g = gamma(n);
+                for r in 0..rows {
+                    let lr = lam.row(r);
+                    let lam_b = lower(lr.iter().zip(b).fold(Interval::ZERO, |s, (&c, &bi)| s + Interval::point(c) * Interval::point(bi)));
+                    let err = ((g * nonneg_dot_upper(lr, &w_amax)).next_up() + underflow).next_up();
+                    d[r] = add_down(add_down(d[r], lam_b), -err);
+                }
+                lam = lam.dot(w);
+            }
+            Layer::Relu => {
+                // Step 2 above: choose λ' per neuron and row, then a rigorous offset.
+                let pre = &vals[k];
+                for r in 0..rows {
+                    let mut offset = 0.0f64;
+                    for (i, z) in pre.iter().enumerate() {
+                        let l = lam[[r, i]];
+                        if l == 0.0 {
+                            continue;
+                        }
+                        let (lo, hi) = (z.lo(), z.hi());
+                        if z.is_undefined() {
+                            return vec![f64::NEG_INFINITY; rows];
+                        }
+                        if hi <= 0.0 {
+                            lam[[r, i]] = 0.0; // relu(z) = 0 exactly
+                        } else if lo >= 0.0 {
+                            // relu(z) = z exactly: λ' = λ, offset 0
+                        } else {
+                            let mut lp = if l > 0.0 {
+                                // lower relaxation relu(z) ≥ α·z, α by the adaptive rule
+                                if hi >= -lo {
+                                    l
+                                } else {
+                                    0.0
+                                }
+                            } else {
+                                // triangle upper bound relu(z) ≤ u/(u−l)·(z − l)
+                                l * (hi / (hi - lo))
+                            };
+                            if !lp.is_finite() {
+                                lp = 0.0;
+                            }
+                            // min of λ·relu(z) − λ'·z over z ∈ {l, 0, u}; relu(l) = 0, relu(u) = u.
+                            let lam_i = Interval::point(l);
+                            let lp_i = Interval::point(lp);
+                            let at_l = lower(Interval::ZERO - lp_i * Interval::point(lo));
+                            let at_u = lower(lam_i * Interval::point(hi) - lp_i * Interval::point(hi));
+                            offset = add_down(offset, at_l.min(at_u).min(0.0));
+                            lam[[r, i]] = lp;
+                        }
+                    }
+                    d[r] = add_down(d[r], offset);
+                }
+            }
+            Layer::Sigmoid | Layer::Tanh => {
+                // Not relaxed: concretise over the interval bounds of this layer's output.
+                stop = k + 1;
+                break;
+            }
+        }
+    }
+    // Step 3: lam·v[stop] over the box of v[stop], in interval arithmetic.
+    let box_ = &vals[stop];
+    (0..rows)
+        .map(|r| {
+            let s = lam.row(r).iter().zip(box_).fold(Interval::ZERO, |s, (&c, x)| s + x.scale(c));
+            let v = add_down(d[r], lower(s));
+            if v.is_nan() {
+                f64::NEG_INFINITY
+            } else {
+                v
+            }
+        })
+        .collect()
+}
+
+/// Rows `+e_i` and `−e_i` for each listed neuron: lower bounds of these give both ends.
+fn plus_minus_units(dim: usize, which: &[usize]) -> Array2<f64> {
+    let mut obj = Array2::zeros((2 * which.len(), dim));
+    for (t, &i) in which.iter().enumerate() {
+        obj[[2 * t, i]] = 1.0;
+        obj[[2 * t + 1, i]] = -1.0;
+    }
+    obj
+}
+
+fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -> OutputBounds {
+    let layers = net.layers();
+    let mut vals: Vec<Vec<Interval>> = vec![input.to_vec()];
+    for (k, layer) in layers.iter().enumerate() {
+        if matches!(layer, Layer::Relu) && k > 0 {
+            // Tighten the pre-activation bounds of the neurons whose relaxation matters.
+            let unstable: Vec<usize> = (0..vals[k].len()).filter(|&i| vals[k][i].lo() < 0.0 && vals[k][i].hi() > 0.0).collect();
+            if !unstable.is_empty() {
+                let lows = backward(net, &vals, k, plus_minus_units(vals[k].len(), &unstable));
+                for (t, &i) in unstable.iter().enumerate() {
+                    let sym = Interval::new(lows[2 * t], -lows[2 * t + 1]);
+                    // Both enclose the true range; an empty intersection cannot happen
+                    // for a sound pair, and keeping the interval bound stays sound.
+                    if let Some(tight) = sym.intersect(&vals[k][i]) {
+                        vals[k][i] = tight;
+                    }
+                }
+            }
+        }
+        let next = forward_layer(layer, &vals[k]);
+        vals.push(next);
+    }
+    // Objectives at the output: +e_i, −e_i, then e_i − e_j for i ≠ j.
+    let m = net.output_dim();
+    let pairs: Vec<(usize, usize)> = (0..m).flat_map(|i| (0..m).filter(move |&j| j != i).map(move |j| (i, j))).collect();
+    let mut obj = Array2::zeros((2 * m + pairs.len(), m));
+    obj.slice_mut(ndarray::s![..2 * m, ..]).assign(&plus_minus_units(m, &(0..m).collect::<Vec<_>>()));
+    for (t, &(i, j)) in pairs.iter().enumerate() {
+        obj[[2 * m + t, i]] = 1.0;
+        obj[[2 * m + t, j]] = -1.0;
+    }
+    let lows = backward(net, &vals, layers.len(), obj);
+    let forward_out = vals.last().expect("at least the input");
+    let outputs: Vec<Interval> = (0..m)
+        .map(|i| {
+            let sym = Interval::new(lows[2 * i], -lows[2 * i + 1]);
+            tightest(&[sym, forward_out[i], interval.outputs[i]])
+        })
+        .collect();
+    let mut diff = differences(&outputs);
+    for (t, &(i, j)) in pairs.iter().enumerate() {
+        // Lower end from e_i − e_j; upper end from −(lower bound of e_j − e_i).
+        let back = pairs.iter().position(|&p| p == (j, i)).expect("both orders are listed");
+        let sym = Interval::new(lows[2 * m + t], -lows[2 * m + back]);
+        diff[i][j] = tightest(&[sym, diff[i][j], interval.diff[i][j]]);
+    }
+    OutputBounds { outputs, diff }
+}
+
+/// The intersection of sound enclosures of the same quantity. Undefined ones are
+/// skipped; an empty intersection (impossible for sound inputs) falls back to the last,
+/// the interval result.
+fn tightest(candidates: &[Interval]) -> Interval {
+    let fallback = *candidates.last().expect("at least one candidate");
+    let mut acc = Interval::ENTIRE;
+    for c in candidates.iter().filter(|c| !c.is_undefined()) {
+        match acc.intersect(c) {
+            Some(i) => acc = i,
+            None => return fallback,
+        }
+    }
+    acc
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::array;
+
+    fn iv(lo: f64, hi: f64) -> Interval {
+        Interval::new(lo, hi)
+    }
+
+    /// Worked example of the ReLU triangle relaxation (the standard relaxation from the
+    /// published literature on linear bound propagation; common practice). The numbers
+    /// below are worked by hand.
+    ///
+    /// Network: x1, x2 ∈ [−1, 1]; z1 = x1 + x2, z2 = x1 − x2 + 1; h = relu(z);
+    /// y = −h1 + h2.
+    #[test]
+    fn worked_example_triangle_relaxation() {
+        // Layer 1: z1 = x1 + x2, z2 = x1 − x2 + 1.  Layer 2: y = −h1 + h2.
+        //
+        // Pre-activation bounds (exact for one affine layer over a box):
+        //   z1 ∈ [−2, 2],  z2 ∈ [−1, 3].  Both neurons are unstable.
+        //
+        // Lower bound of y = −h1 + h2 (objective λ = (−1, +1) on h):
+        //   h1 has λ = −1 < 0: use the triangle upper bound
+        //     relu(z1) ≤ u/(u−l)·(z1 − l) = 2/4·(z1 + 2) = 0.5·z1 + 1,
+        //     so −h1 ≥ −0.5·z1 − 1.
+        //   h2 has λ = +1 > 0: lower bound relu(z2) ≥ α·z2 with α = 1 since
+        //     u = 3 ≥ −l = 1, so h2 ≥ z2.
+        //   y ≥ −0.5·z1 − 1 + z2 = −0.5(x1 + x2) − 1 + x1 − x2 + 1
+        //     = 0.5·x1 − 1.5·x2.
+        //   Over the box: min = 0.5·(−1) − 1.5·1 = −2.
+        //
+        // Upper bound of y: lower bound of −y = h1 − h2 (λ = (+1, −1)):
+        //   h1, λ = +1: α = 1 since u = 2 ≥ −l = 2, so h1 ≥ z1.
+        //   h2, λ = −1: triangle relu(z2) ≤ 3/4·(z2 + 1), so −h2 ≥ −0.75·z2 − 0.75.
+        //   −y ≥ z1 − 0.75·z2 − 0.75 = x1 + x2 − 0.75·x1 + 0.75·x2 − 0.75 − 0.75
+        //      = 0.25·x1 + 1.75·x2 − 1.5;  min over the box = −0.25 − 1.75 − 1.5 = −3.5.
+        //   So y ≤ 3.5.
+        //
+        // Interval propagation for comparison: h1 ∈ [0, 2], h2 ∈ [0, 3], so
+        //   y ∈ [−2, 3]: here the interval upper end 3 is tighter than 3.5, and the
+        //   result (intersected) is [−2, 3]. The symbolic lower end −2 matches.
+        //
+        // Difference: one output only, so diff = [[0]].
+        let net = Network::new(
+            2,
+            vec![
+                Layer::Dense { w: array![[1.0, 1.0], [1.0, -1.0]], b: array![0.0, 1.0] },
+                Layer::Relu,
+                Layer::Dense { w: array![[-1.0, 1.0]], b: array![0.0] },
+            ],
+            false,
+        )
+        .unwrap();
+        let input = [iv(-1.0, 1.0), iv(-1.0, 1.0)];
+        // The raw backward pass, before any intersection, gives the hand numbers
+        // (−2 and −3.5) up to the rigorous rounding allowance (a few ulps).
+        let vals = interval_values(&net, &input);
+        let lows = backward(&net, &vals, 3, array![[1.0], [-1.0]]);
+        assert!(lows[0] <= -2.0 && lows[0] > -2.0 - 1e-12, "{}", lows[0]);
+        assert!(lows[1] <= -3.5 && lows[1] > -3.5 - 1e-12, "{}", lows[1]);
+        let sym = output_bounds(&net, &input, BoundsMethod::Symbolic);
+        let ib = output_bounds(&net, &input, BoundsMethod::Interval);
+        assert!(ib.outputs[0].lo() <= -2.0 && ib.outputs[0].hi() >= 3.0);
+        assert!(sym.outputs[0].lo() <= -2.0 && sym.outputs[0].lo() > -2.0 - 1e-12);
+        assert!(sym.outputs[0].hi() >= 3.0 && sym.outputs[0].hi() < 3.0 + 1e-12);
+        assert_eq!(sym.diff[0][0], Interval::ZERO);
+    }
+
+    #[test]
+    fn diff_objective_beats_subtracting_outputs() {
+        // y1 = x, y2 = x − 1 for x ∈ [0, 1]: outputs [0,1] and [−1,0]; subtracting gives
+        // y1 − y2 ∈ [0, 2], but y1 − y2 = 1 exactly, which the e1 − e2 objective sees.
+        let net = Network::new(1, vec![Layer::Dense { w: array![[1.0], [1.0]], b: array![0.0, -1.0] }], false).unwrap();
+        let sym = output_bounds(&net, &[iv(0.0, 1.0)], BoundsMethod::Symbolic);
+        let d = sym.diff[0][1];
+        assert!(d.lo() <= 1.0 && d.lo() > 1.0 - 1e-12 && d.hi() >= 1.0 && d.hi() < 1.0 + 1e-12, "{d:?}");
+        let ib = output_bounds(&net, &[iv(0.0, 1.0)], BoundsMethod::Interval);
+        assert!(ib.diff[0][1].lo() <= 0.0 && ib.diff[0][1].hi() >= 2.0);
+        // Interval leaves the order open (diff holds 0), so the portfolio runs symbolic.
+        let pf = output_bounds(&net, &[iv(0.0, 1.0)], BoundsMethod::Portfolio);
+        assert_eq!(pf, sym);
+        assert!(pf.orders_all_pairs());
+    }
+
+    #[test]
+    fn gamma_is_an_upper_bound() {
+        assert!(gamma(1) >= U && gamma(1) < 1.0000001 * U);
+        assert!(gamma(64) >= 64.0 * U);
+    }
+
+    #[test]
+    fn sigmoid_interval_encloses_values() {
+        let out = forward_layer(&Layer::Sigmoid, &[iv(-1.0, 2.0), iv(-800.0, 800.0)]);
+        let s = |x: f64| 1.0 / (1.0 + (-x).exp());
+        assert!(out[0].contains(s(-1.0)) && out[0].contains(s(2.0)));
+        assert!(out[1].lo() >= 0.0 && out[1].hi() <= 1.0 && out[1].contains(0.5));
+    }
+}
