@@ -2,6 +2,9 @@
 //! or SQL. Numbers that are bounds travel as [`interval::Interval`]s (or affine forms),
 //! never as bare f64, so that an inward rounding cannot slip in.
 
+pub mod affine;
 pub mod expr;
 pub mod interval;
+pub mod plant;
 pub mod spec;
+pub mod taylor;
