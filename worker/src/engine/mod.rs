@@ -2,14 +2,15 @@
 //! or SQL. Numbers that are bounds travel as [`interval::Interval`]s (or affine forms),
 //! never as bare f64, so that an inward rounding cannot slip in.
 
+pub mod affine;
+pub mod check;
+pub mod closed_loop;
 pub mod expr;
+pub mod falsify;
 pub mod interval;
 pub mod net;
+pub mod plant;
+pub mod reach;
 pub mod spec;
+pub mod taylor;
 pub mod verdict;
-// Closed loop, proof, falsifier and cell check: wired in once the plant and network
-// modules land.
-// pub mod closed_loop;
-// pub mod reach;
-// pub mod falsify;
-// pub mod check;
