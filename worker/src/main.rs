@@ -1,5 +1,7 @@
 //! `tessera-worker`: command-line entry of the worker.
 
+mod cli_engine;
+
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -41,6 +43,26 @@ enum Cmd {
         #[arg(long)]
         json: bool,
     },
+    /// Decide one cell: safe (a proof), unsafe (a checked counterexample) or inconclusive.
+    Check {
+        /// The spec file (JSON); networks are read relative to it.
+        spec: PathBuf,
+        /// The cell as JSON, e.g. '{"h":[2,3]}'; states left out keep the envelope.
+        /// Without it the whole envelope is checked.
+        #[arg(long)]
+        cell: Option<String>,
+        /// Print the verdict JSON.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Re-simulate a counterexample and print its trajectory and where it becomes unsafe.
+    Replay {
+        /// A verdict JSON (from `check --json` or a report) or a bare counterexample.
+        verdict: PathBuf,
+        /// The spec, when the verdict does not name it.
+        #[arg(long)]
+        spec: Option<PathBuf>,
+    },
 }
 
 fn parse_method(s: &str) -> Result<BoundsMethod, String> {
@@ -56,6 +78,8 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     match cli.cmd {
         Cmd::Validate { spec, json } => validate(&spec, json),
+        Cmd::Check { spec, cell, json } => cli_engine::check(&spec, cell.as_deref(), json),
+        Cmd::Replay { verdict, spec } => cli_engine::replay(&verdict, spec.as_deref()),
         Cmd::Bounds { model, lower, upper, method, json } => match bounds(&model, &lower, &upper, method) {
             Ok(b) => {
                 print_bounds(&b, json);

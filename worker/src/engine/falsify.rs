@@ -62,7 +62,7 @@ pub fn unsafe_region_f64(cl: &ClosedLoop, x: &[f64]) -> Option<usize> {
 
 /// How disturbances and noise are chosen along one simulation.
 #[derive(Clone, Copy, Debug)]
-enum Pick {
+pub enum Pick {
     Low,
     High,
     Random,

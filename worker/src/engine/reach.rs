@@ -11,7 +11,7 @@
 //! are joined (a sound over-approximation of their union), which keeps the tree's
 //! width bounded by the number of commands.
 
-use super::affine::StateSet;
+use super::affine::{Affine, StateSet};
 use super::closed_loop::{possible_commands, ClosedLoop};
 use super::interval::Interval;
 use super::spec::{BoundsMethod, SetKind};
@@ -161,15 +161,20 @@ pub fn prove_traced(
                 });
             }
 
-            // One child per possible command; with latency 1 the plant does not depend
-            // on the decision, so integrate once.
-            let mut flows: Vec<(usize, super::plant::PeriodFlow)> = Vec::new();
-            for &c in &choices {
+            // Each possible command keeps only the part of the set where it may be
+            // chosen (a box hull of the pieces that allow it), so a branch does not
+            // carry states that would have decided otherwise.
+            let t_net = Instant::now();
+            let parts = restrict_to_decisions(cl, &br.set, br.prev, &choices);
+            stats.network_ms += t_net.elapsed().as_secs_f64() * 1e3;
+
+            // One child per possible command.
+            for (c, part) in parts {
                 let applied = cl.applied(c, br.prev);
-                if !flows.iter().any(|(a, _)| *a == applied) {
+                {
                     let t_plant = Instant::now();
                     let flow = cl.plant.integrate_period(
-                        &br.set,
+                        &part,
                         &spec.commands[applied].inputs,
                         &spec.disturbance_ranges,
                         spec.period,
@@ -191,15 +196,13 @@ pub fn prove_traced(
                     if let Some(f) = check_tube(cl, cell, &flow, k, applied) {
                         return Proof::Failed(Failure { suspect_command: Some(br.root), ..f });
                     }
-                    flows.push((applied, flow));
-                }
-                let flow = &flows.iter().find(|(a, _)| *a == cl.applied(c, br.prev)).unwrap().1;
                 let mut set = match opts.set {
                     SetKind::Affine => flow.end.clone(),
                     SetKind::Box => StateSet::from_box(&flow.end.to_box()),
                 };
                 set.reduce(max_gens);
                 next.push(Branch { set, prev: c, root: br.root });
+                }
             }
         }
         // Keep the width bounded: join branches that share their previous command.
@@ -214,6 +217,94 @@ pub fn prove_traced(
         stats.periods_reached = k + 1;
     }
     Proof::Safe
+}
+
+/// Pieces of a set's box hull, bisected where the decision is open, at most this many.
+const DECISION_PIECES: usize = 16;
+
+/// Commands possible over a box of states (observations evaluated with intervals).
+fn choices_on_box(cl: &ClosedLoop, b: &[Interval], prev: usize) -> Vec<usize> {
+    let spec = &cl.spec;
+    let obs: Vec<Interval> = spec.observations.iter().map(|o| o.expr.eval_interval(b) + o.noise).collect();
+    let input = cl.network_input(&obs);
+    let bounds = cl.bound_outputs(prev, &input, BoundsMethod::Symbolic);
+    possible_commands(&bounds, spec.decision)
+}
+
+/// For each command in `choices`, the part of `set` on which it may be chosen. When a
+/// command may be chosen everywhere it keeps the whole set (affine dependencies
+/// intact); otherwise it gets the box hull of the pieces that allow it, with fresh
+/// symbols. Sound: every state of the set lies in a piece, and in that piece every
+/// command the controller could pick is listed by the piece's bounds.
+fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: &[usize]) -> Vec<(usize, StateSet)> {
+    if choices.len() <= 1 {
+        return choices.iter().map(|&c| (c, set.clone())).collect();
+    }
+    let hull = set.to_box();
+    if hull.iter().any(|i| !i.is_bounded()) {
+        return choices.iter().map(|&c| (c, set.clone())).collect();
+    }
+    // Bisect ambiguous pieces (widest dimension relative to the hull) up to the limit.
+    let mut pieces: Vec<(Vec<Interval>, Vec<usize>)> = vec![(hull.clone(), choices.to_vec())];
+    while pieces.len() < DECISION_PIECES {
+        let Some(k) = pieces.iter().position(|(_, ch)| ch.len() > 1) else { break };
+        let (b, _) = pieces.swap_remove(k);
+        let d = (0..b.len())
+            .max_by(|&i, &j| {
+                let wi = if hull[i].width() > 0.0 { b[i].width() / hull[i].width() } else { 0.0 };
+                let wj = if hull[j].width() > 0.0 { b[j].width() / hull[j].width() } else { 0.0 };
+                wi.partial_cmp(&wj).unwrap_or(std::cmp::Ordering::Equal)
+            })
+            .unwrap_or(0);
+        if !(b[d].width() > 0.0) {
+            pieces.push((b, choices.to_vec()));
+            break;
+        }
+        let (lo, hi) = b[d].bisect();
+        for half in [lo, hi] {
+            let mut nb = b.clone();
+            nb[d] = half;
+            // A piece never allows more than its parent: intersect with the choices.
+            let ch: Vec<usize> = choices_on_box(cl, &nb, prev).into_iter().filter(|c| choices.contains(c)).collect();
+            pieces.push((nb, ch));
+        }
+    }
+    choices
+        .iter()
+        .filter_map(|&c| {
+            let mine: Vec<&Vec<Interval>> = pieces.iter().filter(|(_, ch)| ch.contains(&c)).map(|(b, _)| b).collect();
+            if mine.is_empty() {
+                return None; // ruled out on every piece
+            }
+            if mine.len() == pieces.len() {
+                return Some((c, set.clone()));
+            }
+            let mut h = mine[0].clone();
+            for b in &mine[1..] {
+                for (x, y) in h.iter_mut().zip(b.iter()) {
+                    *x = x.hull(y);
+                }
+            }
+            Some((c, boxed_with_fresh_symbols(set, &h)))
+        })
+        .collect()
+}
+
+/// The box `b` as a set in the symbol space of `like`, on fresh symbols (the initial
+/// symbols keep their meaning; this set no longer depends on them).
+fn boxed_with_fresh_symbols(like: &StateSet, b: &[Interval]) -> StateSet {
+    let mut s = like.clone();
+    let comps: Vec<Affine> = b
+        .iter()
+        .map(|iv| {
+            let sym = s.fresh_symbol();
+            match super::affine::mid_rad(*iv) {
+                Some((m, r)) => Affine::symbol(m, sym, r),
+                None => Affine::undefined(),
+            }
+        })
+        .collect();
+    StateSet::from_forms(comps, s.num_symbols(), like.num_initial())
 }
 
 fn hint_from_box(cl: &ClosedLoop, cell: &[Interval]) -> Option<SplitHint> {
