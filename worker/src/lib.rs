@@ -2,3 +2,4 @@
 //! process that leases cells from the server and reports verdicts.
 
 pub mod engine;
+pub mod client;

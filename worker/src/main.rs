@@ -55,6 +55,28 @@ enum Cmd {
         #[arg(long)]
         json: bool,
     },
+    /// Lease cells from a server and decide them on every core until stopped
+    /// (SIGTERM / SIGINT: running cells finish, queued ones are released).
+    Run {
+        /// The server's address, e.g. http://127.0.0.1:8470.
+        #[arg(long, env = "TESSERA_SERVER")]
+        server: String,
+        /// An access token with the worker role.
+        #[arg(long, env = "TESSERA_TOKEN", hide_env_values = true)]
+        token: String,
+        /// Engine threads (default: all cores).
+        #[arg(long, env = "TESSERA_THREADS")]
+        threads: Option<usize>,
+        /// Name reported to the server (default: host name and process id).
+        #[arg(long)]
+        name: Option<String>,
+        /// Exit after this many cells.
+        #[arg(long)]
+        max_cells: Option<u64>,
+        /// Exit once the server has had no work for this many seconds.
+        #[arg(long)]
+        idle_exit: Option<f64>,
+    },
     /// Re-simulate a counterexample and print its trajectory and where it becomes unsafe.
     Replay {
         /// A verdict JSON (from `check --json` or a report) or a bare counterexample.
@@ -80,6 +102,9 @@ fn main() -> ExitCode {
         Cmd::Validate { spec, json } => validate(&spec, json),
         Cmd::Check { spec, cell, json } => cli_engine::check(&spec, cell.as_deref(), json),
         Cmd::Replay { verdict, spec } => cli_engine::replay(&verdict, spec.as_deref()),
+        Cmd::Run { server, token, threads, name, max_cells, idle_exit } => {
+            run_worker(server, token, threads, name, max_cells, idle_exit)
+        }
         Cmd::Bounds { model, lower, upper, method, json } => match bounds(&model, &lower, &upper, method) {
             Ok(b) => {
                 print_bounds(&b, json);
@@ -198,6 +223,58 @@ fn validate(path: &PathBuf, json: bool) -> ExitCode {
                 }
             }
             ExitCode::from(1)
+        }
+    }
+}
+
+fn run_worker(
+    server: String,
+    token: String,
+    threads: Option<usize>,
+    name: Option<String>,
+    max_cells: Option<u64>,
+    idle_exit: Option<f64>,
+) -> ExitCode {
+    use std::sync::atomic::AtomicBool;
+    use std::sync::Arc;
+    tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info")),
+        )
+        .with_writer(std::io::stderr)
+        .init();
+    let stop = Arc::new(AtomicBool::new(false));
+    for sig in [signal_hook::consts::SIGTERM, signal_hook::consts::SIGINT] {
+        if let Err(e) = signal_hook::flag::register(sig, stop.clone()) {
+            eprintln!("error: cannot handle signal {sig}: {e}");
+            return ExitCode::from(2);
+        }
+    }
+    let threads = threads.unwrap_or_else(|| std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1));
+    let host = std::fs::read_to_string("/etc/hostname").map(|s| s.trim().to_string()).unwrap_or_else(|_| "worker".into());
+    let opts = tessera_worker::client::run::RunOptions {
+        server,
+        token,
+        threads,
+        name: name.unwrap_or_else(|| format!("{host}-{}", std::process::id())),
+        max_cells,
+        idle_exit: idle_exit.map(std::time::Duration::from_secs_f64),
+    };
+    tracing::info!("worker {} on {} threads, server {}", opts.name, threads, opts.server);
+    match tessera_worker::client::run::run(opts, stop) {
+        Ok(s) => {
+            println!(
+                "worker done: {} cells in {:.1} s ({:.2} cells/s), {} leases released",
+                s.cells,
+                s.seconds,
+                s.cells as f64 / s.seconds.max(1e-9),
+                s.released
+            );
+            ExitCode::SUCCESS
+        }
+        Err(e) => {
+            eprintln!("error: {e}");
+            ExitCode::from(2)
         }
     }
 }

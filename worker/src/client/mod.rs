@@ -1,0 +1,4 @@
+//! Talking to the server: the REST client and the worker loop.
+
+pub mod api;
+pub mod run;

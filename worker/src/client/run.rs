@@ -1,0 +1,305 @@
+//! The worker loop: lease cells, run the engine on N threads, extend leases of long
+//! cells, submit results in batches, back off while the server is away, and stop
+//! gracefully on SIGTERM / SIGINT (no new leases; running cells finish; queued cells
+//! are released; every result is delivered before exit).
+
+use super::api::{Api, LeasedCell, ResultItem};
+use crate::engine::check::check_cell;
+use crate::engine::closed_loop::ClosedLoop;
+use crate::engine::net::{self, Network};
+use crate::engine::spec::parse_spec;
+use std::collections::{HashMap, VecDeque};
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::sync::mpsc;
+use std::sync::{Arc, Condvar, Mutex};
+use std::time::{Duration, Instant};
+
+pub struct RunOptions {
+    pub server: String,
+    pub token: String,
+    pub threads: usize,
+    /// Name reported to the server with leases and results.
+    pub name: String,
+    /// Stop after this many cells (for tests and scripts); `None` runs until stopped.
+    pub max_cells: Option<u64>,
+    /// Exit when the server has had no work for this long; `None` waits forever.
+    pub idle_exit: Option<Duration>,
+}
+
+/// What a run did, printed at the end.
+#[derive(Debug, Default)]
+pub struct RunSummary {
+    pub cells: u64,
+    pub seconds: f64,
+    pub released: u64,
+}
+
+struct Job {
+    cell: LeasedCell,
+    loop_: Arc<ClosedLoop>,
+}
+
+struct Done {
+    lease_id: String,
+    result: serde_json::Value,
+    elapsed_ms: f64,
+}
+
+/// The queue between the coordinator and the engine threads.
+struct Queue {
+    jobs: Mutex<VecDeque<Job>>,
+    ready: Condvar,
+    closed: AtomicBool,
+    running: AtomicUsize,
+}
+
+/// Run until stopped by a signal (or by the options' limits).
+pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary> {
+    let api = Api::new(&opts.server, &opts.token);
+    let threads = opts.threads.max(1);
+    let queue = Arc::new(Queue {
+        jobs: Mutex::new(VecDeque::new()),
+        ready: Condvar::new(),
+        closed: AtomicBool::new(false),
+        running: AtomicUsize::new(0),
+    });
+    let (done_tx, done_rx) = mpsc::channel::<Done>();
+    let mut handles = Vec::new();
+    for i in 0..threads {
+        let q = queue.clone();
+        let tx = done_tx.clone();
+        handles.push(std::thread::Builder::new().name(format!("engine-{i}")).spawn(move || engine_thread(q, tx))?);
+    }
+    drop(done_tx);
+
+    let started = Instant::now();
+    let mut loops: HashMap<String, Arc<ClosedLoop>> = HashMap::new();
+    let mut models: HashMap<String, Network> = HashMap::new();
+    // Leases we hold (queued or running), for extension.
+    let mut held: HashMap<String, LeasedCell> = HashMap::new();
+    let mut pending: Vec<ResultItem> = Vec::new();
+    let mut summary = RunSummary::default();
+    let mut lease_seconds = 60.0f64;
+    let mut last_extend = Instant::now();
+    let mut last_report = Instant::now();
+    let mut backoff = Duration::from_millis(200);
+    let mut next_lease_at = Instant::now();
+    let mut idle_since: Option<Instant> = None;
+    let mut leased_total: u64 = 0;
+
+    loop {
+        let stopping = stop.load(Ordering::SeqCst) || opts.max_cells.is_some_and(|m| leased_total >= m);
+
+        // Collect finished cells.
+        while let Ok(d) = done_rx.try_recv() {
+            held.remove(&d.lease_id);
+            summary.cells += 1;
+            pending.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
+        }
+
+        // Deliver results in batches; keep them on a transient failure.
+        if !pending.is_empty() {
+            match api.submit(&opts.name, &pending) {
+                Ok(answers) => {
+                    for a in answers.iter().filter(|a| a.status != "accepted") {
+                        tracing::warn!(lease = %a.lease_id, status = %a.status, "result not accepted");
+                    }
+                    pending.clear();
+                    backoff = Duration::from_millis(200);
+                }
+                Err(e) if e.is_transient() => {
+                    tracing::warn!("submitting {} results failed, will retry: {e}", pending.len());
+                }
+                Err(e) => {
+                    tracing::error!("the server refused {} results: {e}", pending.len());
+                    pending.clear();
+                }
+            }
+        }
+
+        // On stop: release what has not started, wait for the running cells.
+        if stopping {
+            let queued: Vec<Job> = queue.jobs.lock().unwrap().drain(..).collect();
+            if !queued.is_empty() {
+                let ids: Vec<String> = queued.iter().map(|j| j.cell.lease_id.clone()).collect();
+                match api.release(&ids) {
+                    Ok(_) => summary.released += ids.len() as u64,
+                    Err(e) => tracing::warn!("releasing {} leases failed (they will expire): {e}", ids.len()),
+                }
+                for id in &ids {
+                    held.remove(id);
+                }
+            }
+            if queue.running.load(Ordering::SeqCst) == 0 && held.is_empty() && pending.is_empty() {
+                break;
+            }
+        }
+
+        // Extend leases before they run out.
+        if !held.is_empty() && last_extend.elapsed().as_secs_f64() > lease_seconds / 3.0 {
+            let ids: Vec<String> = held.keys().cloned().collect();
+            match api.extend(&ids) {
+                Ok(items) => {
+                    for it in items.iter().filter(|i| i.status != "extended") {
+                        tracing::warn!(lease = %it.lease_id, status = %it.status, "lease not extended");
+                    }
+                }
+                Err(e) => tracing::warn!("extending {} leases failed: {e}", ids.len()),
+            }
+            last_extend = Instant::now();
+        }
+
+        // Keep about two cells per thread queued or running.
+        let outstanding = queue.jobs.lock().unwrap().len() + queue.running.load(Ordering::SeqCst);
+        let want = (2 * threads).saturating_sub(outstanding);
+        if !stopping && want > 0 && Instant::now() >= next_lease_at {
+            let want = match opts.max_cells {
+                Some(m) => want.min((m - leased_total) as usize),
+                None => want,
+            };
+            match api.lease(want.max(1) as u32, &opts.name) {
+                Ok(answer) => {
+                    lease_seconds = answer.lease_seconds.max(1.0);
+                    backoff = Duration::from_millis(200);
+                    if answer.leases.is_empty() {
+                        let since = *idle_since.get_or_insert_with(Instant::now);
+                        if opts.idle_exit.is_some_and(|d| since.elapsed() >= d) && outstanding == 0 {
+                            stop.store(true, Ordering::SeqCst);
+                        }
+                        next_lease_at = Instant::now() + Duration::from_millis(500);
+                    } else {
+                        idle_since = None;
+                    }
+                    for cell in answer.leases {
+                        leased_total += 1;
+                        match closed_loop_for(&api, &cell, &mut loops, &mut models) {
+                            Ok(l) => {
+                                held.insert(cell.lease_id.clone(), cell.clone());
+                                queue.jobs.lock().unwrap().push_back(Job { cell, loop_: l });
+                                queue.ready.notify_one();
+                            }
+                            Err(msg) => {
+                                tracing::error!(cell = %cell.cell_id, "cannot set up the cell: {msg}");
+                                pending.push(ResultItem {
+                                    lease_id: cell.lease_id.clone(),
+                                    result: serde_json::json!({"error": msg}),
+                                    elapsed_ms: None,
+                                });
+                            }
+                        }
+                    }
+                }
+                Err(e) => {
+                    if e.is_transient() {
+                        tracing::warn!("leasing failed, retrying in {:?}: {e}", backoff);
+                    } else {
+                        tracing::error!("the server refused to lease: {e}");
+                    }
+                    next_lease_at = Instant::now() + backoff;
+                    backoff = (backoff * 2).min(Duration::from_secs(30));
+                }
+            }
+        }
+
+        if last_report.elapsed() > Duration::from_secs(30) {
+            let s = started.elapsed().as_secs_f64();
+            tracing::info!("{} cells in {:.0} s ({:.2} cells/s)", summary.cells, s, summary.cells as f64 / s);
+            last_report = Instant::now();
+        }
+
+        // Wait a little for the next finished cell.
+        match done_rx.recv_timeout(Duration::from_millis(100)) {
+            Ok(d) => {
+                held.remove(&d.lease_id);
+                summary.cells += 1;
+                pending.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
+            }
+            Err(mpsc::RecvTimeoutError::Timeout) => {}
+            Err(mpsc::RecvTimeoutError::Disconnected) => break,
+        }
+    }
+
+    queue.closed.store(true, Ordering::SeqCst);
+    queue.ready.notify_all();
+    for h in handles {
+        let _ = h.join();
+    }
+    summary.seconds = started.elapsed().as_secs_f64();
+    Ok(summary)
+}
+
+fn engine_thread(q: Arc<Queue>, tx: mpsc::Sender<Done>) {
+    loop {
+        let job = {
+            let mut jobs = q.jobs.lock().unwrap();
+            loop {
+                if let Some(j) = jobs.pop_front() {
+                    q.running.fetch_add(1, Ordering::SeqCst);
+                    break Some(j);
+                }
+                if q.closed.load(Ordering::SeqCst) {
+                    break None;
+                }
+                jobs = q.ready.wait_timeout(jobs, Duration::from_millis(200)).unwrap().0;
+            }
+        };
+        let Some(job) = job else { return };
+        let t = Instant::now();
+        let result = run_cell(&job);
+        let _ = tx.send(Done { lease_id: job.cell.lease_id.clone(), result, elapsed_ms: t.elapsed().as_secs_f64() * 1e3 });
+        q.running.fetch_sub(1, Ordering::SeqCst);
+    }
+}
+
+/// The verdict JSON of one cell, or `{"error": …}`; an engine panic is caught and
+/// reported as an error so the server can count the attempt.
+fn run_cell(job: &Job) -> serde_json::Value {
+    let cell = match job.loop_.cell_from_map(&job.cell.cell_box) {
+        Ok(c) => c,
+        Err(e) => return serde_json::json!({"error": e.to_string()}),
+    };
+    let l = job.loop_.clone();
+    match std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| check_cell(&l, &cell))) {
+        Ok(v) => serde_json::to_value(&v).unwrap_or_else(|e| serde_json::json!({"error": e.to_string()})),
+        Err(p) => {
+            let msg = p
+                .downcast_ref::<String>()
+                .cloned()
+                .or_else(|| p.downcast_ref::<&str>().map(|s| s.to_string()))
+                .unwrap_or_else(|| "engine panic".into());
+            serde_json::json!({"error": format!("engine failure: {msg}")})
+        }
+    }
+}
+
+/// The campaign's closed loop, fetched once per spec hash; models once per hash.
+fn closed_loop_for(
+    api: &Api,
+    cell: &LeasedCell,
+    loops: &mut HashMap<String, Arc<ClosedLoop>>,
+    models: &mut HashMap<String, Network>,
+) -> Result<Arc<ClosedLoop>, String> {
+    if let Some(l) = loops.get(&cell.spec_hash) {
+        return Ok(l.clone());
+    }
+    let text = api
+        .get_text(&format!("/api/v1/campaigns/{}/spec", cell.campaign_id))
+        .map_err(|e| format!("fetching the spec: {e}"))?;
+    let spec = parse_spec(&text).map_err(|errs| format!("the stored spec is invalid: {}", errs[0]))?;
+    let mut nets = Vec::new();
+    for r in &spec.networks {
+        let hex = r.strip_prefix("sha256:").ok_or(format!("network '{r}' is not a stored model"))?;
+        if !models.contains_key(hex) {
+            let bytes = api.get_bytes(&format!("/api/v1/models/{hex}")).map_err(|e| format!("fetching model {hex}: {e}"))?;
+            if net::sha256_hex(&bytes) != hex {
+                return Err(format!("model {hex}: downloaded bytes do not match the hash"));
+            }
+            let n = net::load_onnx(&bytes).map_err(|e| format!("model {hex}: {e}"))?;
+            models.insert(hex.to_string(), n);
+        }
+        nets.push(models[hex].clone());
+    }
+    let l = Arc::new(ClosedLoop::new(spec, nets).map_err(|e| e.to_string())?);
+    loops.insert(cell.spec_hash.clone(), l.clone());
+    Ok(l)
+}
