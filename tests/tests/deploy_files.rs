@@ -1194,7 +1194,7 @@ fn slurm_seconds(v: &str) -> Option<u64> {
 fn check_sbatch(source: &str, text: &str) -> (Vec<String>, Option<u64>) {
     let mut errors = Vec::new();
     let d = sbatch_directives(text);
-    if !d.get("--array").is_some_and(|a| !a.is_empty()) {
+    if d.get("--array").is_none_or(|a| a.is_empty()) {
         errors.push(format!("{source}: lacks #SBATCH --array="));
     }
     let time = d.get("--time").and_then(|t| slurm_seconds(t));
@@ -1926,7 +1926,7 @@ fn doc_mut<'a>(docs: &'a mut [Doc], k: &str, n: &str) -> &'a mut Value {
         .value
 }
 
-fn container_mut<'a>(v: &'a mut Value, index: usize) -> &'a mut Value {
+fn container_mut(v: &mut Value, index: usize) -> &mut Value {
     &mut v["spec"]["template"]["spec"]["containers"][index]
 }
 
