@@ -5,6 +5,9 @@
 //! - `systemd-analyze verify` and `systemd-analyze security --offline` from Debian's
 //!   `systemd` package judge the unit files (systemd's own parser, not ours).
 //! - `shellcheck` from Debian's `shellcheck` package judges the Slurm script.
+//! - The official Kubernetes Python client (PyPI `kubernetes`), whose models are
+//!   generated from the Kubernetes OpenAPI spec, judges field names and types
+//!   (tests/reference/check_k8s_fields.py).
 //! - The Kubernetes field rules checked here (apiVersion/kind pairs, selector ⊆ pod
 //!   labels, annotation values are strings, probes, `secretKeyRef`, HPA
 //!   `scaleTargetRef`) follow the Kubernetes API reference; the apiVersions are the
@@ -2248,4 +2251,107 @@ fn deployed_command_lines_start_a_real_server_and_worker() {
         Some(0),
         "the worker must exit 0 after SIGTERM"
     );
+}
+
+// ---------------------------------------------------------------------------
+// Field names and types against the official Kubernetes client's models.
+// ---------------------------------------------------------------------------
+
+/// Runs tests/reference/check_k8s_fields.py on `files`; returns its exit code and
+/// report. A missing Python package fails the test with the install command.
+fn k8s_client_check(files: &[PathBuf]) -> (i32, serde_json::Value) {
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("reference/check_k8s_fields.py");
+    let out = Command::new("python3")
+        .arg(&script)
+        .args(files)
+        .output()
+        .unwrap_or_else(|e| panic!("cannot run python3: {e}"));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap_or_else(|e| {
+        panic!(
+            "{} printed no JSON ({e}):\n{}\n{}",
+            script.display(),
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        )
+    });
+    if let Some(missing) = report.get("missing") {
+        panic!(
+            "Python package missing ({missing}): run `python3 -m pip install -r tests/requirements.txt` \
+             (the Kubernetes check needs the `kubernetes` client)"
+        );
+    }
+    (out.status.code().unwrap_or(-1), report)
+}
+
+fn report_errors(report: &serde_json::Value) -> Vec<String> {
+    report["errors"]
+        .as_array()
+        .map(|a| {
+            a.iter()
+                .map(|e| e.as_str().unwrap_or("?").to_string())
+                .collect()
+        })
+        .unwrap_or_default()
+}
+
+#[test]
+fn kubernetes_fields_match_the_official_client_models() {
+    let files = files_in("kubernetes", ".yaml");
+    let (code, report) = k8s_client_check(&files);
+    assert_no_errors("kubernetes client models", &report_errors(&report));
+    assert_eq!(code, 0);
+    // Everything but the kustomization was compared with a model.
+    let checked = report["checked"].as_array().map(Vec::len).unwrap_or(0);
+    let docs = kubernetes_docs()
+        .iter()
+        .filter(|d| kind(d) != "Kustomization")
+        .count();
+    assert_eq!(checked, docs, "report: {report:#}");
+}
+
+#[test]
+fn kubernetes_client_check_rejects_wrong_fields_and_types() {
+    let tmp = tempfile::tempdir().unwrap();
+    let server = read("kubernetes/server.yaml");
+    let cases = [
+        (
+            server.replace("readinessProbe:", "readinessProbes:"),
+            "has no field 'readinessProbes'",
+        ),
+        (
+            server.replace("replicas: 1", "replicas: \"1\""),
+            "spec.replicas: expected an integer",
+        ),
+        (
+            server.replace("cpu: \"2\"", "cpu: [2]"),
+            "limits.cpu: expected a string",
+        ),
+        (
+            server.replace("        - name: server\n", "        - image2: x\n"),
+            "has no field 'image2'",
+        ),
+        (
+            server.replace("        - name: server\n", "        -\n"),
+            "rejected by kubernetes.client.V1StatefulSet",
+        ),
+    ];
+    // One run for all cases (importing the client takes seconds); each error names its file.
+    let mut files = Vec::new();
+    for (i, (text, _)) in cases.iter().enumerate() {
+        assert_ne!(text, &server, "case {i} changed nothing");
+        let p = tmp.path().join(format!("case{i}.yaml"));
+        std::fs::write(&p, text).unwrap();
+        files.push(p);
+    }
+    let (code, report) = k8s_client_check(&files);
+    assert_eq!(code, 1, "{report:#}");
+    let errors = report_errors(&report);
+    for (i, (_, needle)) in cases.iter().enumerate() {
+        let file = format!("case{i}.yaml#");
+        let hits: Vec<&String> = errors.iter().filter(|e| e.contains(&file)).collect();
+        assert!(
+            hits.iter().any(|e| e.contains(needle)),
+            "case {i}: expected an error containing {needle:?}, got {hits:#?}"
+        );
+    }
 }
