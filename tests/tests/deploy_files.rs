@@ -13,8 +13,9 @@
 //!   `scaleTargetRef`) follow the Kubernetes API reference; the apiVersions are the
 //!   stable ones as of Kubernetes 1.23+, from memory.
 //! - The command-line contract (`CONTRACT` below) is the interface agreed for
-//!   `tessera-server serve` and `tessera-worker run`; the ignored launch test at the
-//!   bottom runs the real binaries with the invocations extracted here.
+//!   `tessera-server serve` and `tessera-worker run`; the ignored launch test
+//!   (`deployed_command_lines_start_a_real_server_and_worker`) runs the real binaries
+//!   with the invocations extracted here.
 //!
 //! Every check collects messages naming the file and field at fault; the
 //! `*_rejects_*` tests break a copy on purpose to show each check can fail.
