@@ -3,7 +3,7 @@
 # then runs every Rust test of the workspace (unit, integration, end-to-end).
 set -euo pipefail
 cd "$(dirname "$0")/.."
-if ! python3 -c "import numpy, scipy, mpmath, onnx, onnxruntime" 2>/dev/null; then
+if ! python3 -c "import numpy, scipy, mpmath, onnx, onnxruntime, kubernetes" 2>/dev/null; then
   echo "installing the Python reference libraries (tests/requirements.txt)"
   python3 -m pip install --quiet -r tests/requirements.txt
 fi
