@@ -1,0 +1,233 @@
+//! `tessera`: the command-line client of a Tessera server (submit, follow, gate and
+//! report campaigns). Server and token come from flags or `TESSERA_SERVER` /
+//! `TESSERA_TOKEN`.
+
+use clap::{Parser, Subcommand, ValueEnum};
+use serde_json::Value;
+use std::io::{IsTerminal, Write};
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::time::Duration;
+use tessera_worker::client::api::{Api, ApiError};
+use tessera_worker::engine::spec;
+
+#[derive(Parser)]
+#[command(name = "tessera", version, about = "Submit, follow, gate and report Tessera campaigns")]
+struct Cli {
+    /// The server's address.
+    #[arg(long, env = "TESSERA_SERVER", default_value = "http://127.0.0.1:8470", global = true)]
+    server: String,
+    /// An access token (submitter role to submit; viewer is enough to read).
+    #[arg(long, env = "TESSERA_TOKEN", hide_env_values = true, global = true, default_value = "")]
+    token: String,
+    #[command(subcommand)]
+    cmd: Cmd,
+}
+
+#[derive(Clone, Copy, ValueEnum)]
+enum Format {
+    Md,
+    Json,
+}
+
+#[derive(Subcommand)]
+enum Cmd {
+    /// Upload the models named in the spec, create the campaign, print its id.
+    Submit {
+        spec: PathBuf,
+        /// Higher priority campaigns lease first.
+        #[arg(long, default_value_t = 0)]
+        priority: i64,
+    },
+    /// Print a campaign's coverage.
+    Status { id: String },
+    /// Follow a campaign until it ends, with a progress bar of its volume.
+    Wait {
+        id: String,
+        /// Seconds between polls.
+        #[arg(long, default_value_t = 2.0)]
+        interval: f64,
+    },
+    /// Exit 0 when the proven-safe fraction reaches --min-safe, 1 when the finished
+    /// campaign falls short, 2 on error. Waits for the campaign to end first.
+    Gate {
+        id: String,
+        #[arg(long)]
+        min_safe: f64,
+        /// Seconds between polls while waiting.
+        #[arg(long, default_value_t = 2.0)]
+        interval: f64,
+    },
+    /// Print the campaign report.
+    Report {
+        id: String,
+        #[arg(long, value_enum, default_value = "md")]
+        format: Format,
+    },
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let api = Api::new(&cli.server, &cli.token);
+    let r = match cli.cmd {
+        Cmd::Submit { spec, priority } => submit(&api, &spec, priority),
+        Cmd::Status { id } => status(&api, &id),
+        Cmd::Wait { id, interval } => wait(&api, &id, interval, true).map(|_| ExitCode::SUCCESS),
+        Cmd::Gate { id, min_safe, interval } => gate(&api, &id, min_safe, interval),
+        Cmd::Report { id, format } => report(&api, &id, format),
+    };
+    match r {
+        Ok(code) => code,
+        Err(e) => {
+            eprintln!("error: {e}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+/// Upload every model referenced by path and return the spec with `sha256:` refs.
+pub fn upload_models(api: &Api, spec_path: &Path) -> Result<Value, String> {
+    let text = std::fs::read_to_string(spec_path).map_err(|e| format!("cannot read {}: {e}", spec_path.display()))?;
+    let parsed = spec::parse_spec(&text).map_err(|errs| {
+        let lines: Vec<String> = errs.iter().map(|e| format!("  {}: {}", e.path, e.message)).collect();
+        format!("invalid spec:\n{}", lines.join("\n"))
+    })?;
+    let mut doc: Value = serde_json::from_str(&text).map_err(|e| e.to_string())?;
+    let base = spec_path.parent().unwrap_or(Path::new("."));
+    for (i, r) in parsed.networks.iter().enumerate() {
+        if r.starts_with("sha256:") {
+            continue;
+        }
+        let path = base.join(r);
+        let bytes = std::fs::read(&path).map_err(|e| format!("controller.networks[{i}]: cannot read {}: {e}", path.display()))?;
+        let answer: Value =
+            api.post_bytes("/api/v1/models", &bytes).map_err(|e| format!("controller.networks[{i}]: upload refused: {e}"))?;
+        let hex = answer["sha256"].as_str().ok_or("the server's upload answer has no sha256")?;
+        doc["controller"]["networks"][i] = Value::String(format!("sha256:{hex}"));
+    }
+    Ok(doc)
+}
+
+fn submit(api: &Api, spec_path: &Path, priority: i64) -> Result<ExitCode, String> {
+    let doc = upload_models(api, spec_path)?;
+    let c: Value = api.post_json(&format!("/api/v1/campaigns?priority={priority}"), &doc).map_err(describe)?;
+    let id = c["id"].as_str().ok_or("the server's answer has no campaign id")?;
+    println!("{id}");
+    Ok(ExitCode::SUCCESS)
+}
+
+fn describe(e: ApiError) -> String {
+    e.to_string()
+}
+
+fn fraction(cov: &Value, status: &str) -> f64 {
+    cov["statuses"][status]["fraction"].as_f64().unwrap_or(0.0)
+}
+
+fn status(api: &Api, id: &str) -> Result<ExitCode, String> {
+    let cov: Value = api.get_json(&format!("/api/v1/campaigns/{id}/coverage")).map_err(describe)?;
+    println!("campaign {id}: {}", cov["state"].as_str().unwrap_or("?"));
+    println!("{:<12} {:>10} {:>12}  exact", "status", "cells", "fraction");
+    if let Some(map) = cov["statuses"].as_object() {
+        for (s, v) in map {
+            println!(
+                "{:<12} {:>10} {:>11.4}%  {}",
+                s,
+                v["cells"].as_u64().unwrap_or(0),
+                100.0 * v["fraction"].as_f64().unwrap_or(0.0),
+                v["exact"].as_str().unwrap_or("")
+            );
+        }
+    }
+    if let Some(r) = cov["cells_per_second"].as_f64() {
+        println!("{r:.1} cells/s");
+    }
+    if let Some(eta) = cov["estimated_seconds_remaining"].as_f64() {
+        println!("about {eta:.0} s left");
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn bar(cov: &Value) -> String {
+    let width = 40usize;
+    let parts = [("safe", '#'), ("unsafe", 'x'), ("unresolved", '?'), ("failed", '!')];
+    let mut s = String::new();
+    for (name, ch) in parts {
+        let n = (fraction(cov, name) * width as f64).round() as usize;
+        s.extend(std::iter::repeat_n(ch, n.min(width - s.len().min(width))));
+    }
+    while s.len() < width {
+        s.push('.');
+    }
+    let pending = fraction(cov, "pending") + fraction(cov, "leased");
+    format!(
+        "[{s}] safe {:.1}%  unsafe {:.1}%  unresolved {:.1}%  pending {:.1}%",
+        100.0 * fraction(cov, "safe"),
+        100.0 * fraction(cov, "unsafe"),
+        100.0 * fraction(cov, "unresolved"),
+        100.0 * pending
+    )
+}
+
+/// Poll until the campaign is no longer running or paused; returns the last coverage.
+fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String> {
+    let tty = std::io::stderr().is_terminal();
+    let mut failures = 0;
+    loop {
+        match api.get_json::<Value>(&format!("/api/v1/campaigns/{id}/coverage")) {
+            Ok(cov) => {
+                failures = 0;
+                let state = cov["state"].as_str().unwrap_or("?").to_string();
+                if show {
+                    if tty {
+                        eprint!("\r{} {state}   ", bar(&cov));
+                    } else {
+                        eprintln!("{} {state}", bar(&cov));
+                    }
+                    let _ = std::io::stderr().flush();
+                }
+                if state != "running" && state != "paused" {
+                    if show && tty {
+                        eprintln!();
+                    }
+                    return Ok(cov);
+                }
+            }
+            Err(e) if e.is_transient() && failures < 30 => {
+                failures += 1;
+                eprintln!("server unreachable ({e}); retrying");
+            }
+            Err(e) => return Err(e.to_string()),
+        }
+        std::thread::sleep(Duration::from_secs_f64(interval.max(0.1)));
+    }
+}
+
+fn gate(api: &Api, id: &str, min_safe: f64, interval: f64) -> Result<ExitCode, String> {
+    if !(0.0..=1.0).contains(&min_safe) {
+        return Err("--min-safe must be a fraction between 0 and 1".into());
+    }
+    let cov = wait(api, id, interval, false)?;
+    let safe = fraction(&cov, "safe");
+    let state = cov["state"].as_str().unwrap_or("?");
+    if state != "done" {
+        return Err(format!("campaign ended as '{state}', not done"));
+    }
+    if safe >= min_safe {
+        println!("pass: proven-safe fraction {safe:.6} ≥ {min_safe}");
+        Ok(ExitCode::SUCCESS)
+    } else {
+        println!("fail: proven-safe fraction {safe:.6} < {min_safe}");
+        Ok(ExitCode::from(1))
+    }
+}
+
+fn report(api: &Api, id: &str, format: Format) -> Result<ExitCode, String> {
+    let text = match format {
+        Format::Md => api.get_text(&format!("/api/v1/campaigns/{id}/report.md")),
+        Format::Json => api.get_text(&format!("/api/v1/campaigns/{id}/report")),
+    }
+    .map_err(describe)?;
+    println!("{text}");
+    Ok(ExitCode::SUCCESS)
+}
