@@ -388,3 +388,29 @@ async fn restart_in_the_middle_loses_nothing() {
     assert_eq!(r.body, tessera_server::model_check::testing::tiny_model(1, 2, "g"));
     ts.server.stop().await.unwrap();
 }
+
+#[tokio::test]
+async fn leased_boxes_tile_the_envelope_exactly_on_the_wire() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = start(config(dir.path())).await;
+    let model = upload_model(&ts, "w").await;
+    let mut s = spec(&model, 8);
+    // Ends that are not dyadic, so the cut points have long decimal forms.
+    s["envelope"]["h"] = json!([0.1, 0.7]);
+    create_campaign(&ts, &s, "?initial_depth=7").await;
+    let cells = lease(&ts, 200).await;
+    assert_eq!(cells.len(), 128);
+    let mut hs: Vec<[f64; 2]> = cells
+        .iter()
+        .map(|c| [c["box"]["h"][0].as_f64().unwrap(), c["box"]["h"][1].as_f64().unwrap()])
+        .collect();
+    hs.sort_by(|a, b| a[0].total_cmp(&b[0]));
+    assert_eq!(hs[0][0], 0.1);
+    assert_eq!(hs[127][1], 0.7);
+    for w in hs.windows(2) {
+        // Neighbours meet at the same f64, bit for bit, after the JSON round trip.
+        assert_eq!(w[0][1].to_bits(), w[1][0].to_bits(), "{w:?}");
+        assert!(w[0][0] < w[0][1]);
+    }
+    ts.server.stop().await.unwrap();
+}
