@@ -30,6 +30,7 @@ CREATE TABLE campaigns (
 
 -- Per campaign and cell status: number of cells and their summed volume.
 -- Kept in the same transaction as every cell change, so reads are O(1) and exact.
+-- Internal ('split') cells are counted with volume 0: only leaves carry volume.
 CREATE TABLE campaign_counters (
     campaign_id TEXT NOT NULL REFERENCES campaigns(id) ON DELETE CASCADE,
     status      TEXT NOT NULL,

@@ -142,7 +142,9 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     for n in &nodes {
         let e = counts.entry(n.status).or_insert((0, 0));
         e.0 += 1;
-        e.1 += refine::volume(spec.max_depth, n.depth);
+        if n.status != "split" {
+            e.1 += refine::volume(spec.max_depth, n.depth);
+        }
     }
     for s in ALL_STATUSES {
         let (c, v) = counts[s];
@@ -612,7 +614,9 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
         let vol = refine::volume(info.max_depth, c.depth.min(info.max_depth));
         let e = counts.entry(c.status.clone()).or_insert((0, 0));
         e.0 += 1;
-        e.1 += vol;
+        if c.status != "split" {
+            e.1 += vol;
+        }
         if c.status == "split" {
             if c.children.len() != 2 {
                 problems.push(format!("split cell {k} has {} children (expected 2)", c.children.len()));

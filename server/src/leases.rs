@@ -599,10 +599,12 @@ pub async fn submit(
                 }
             }
         };
-        // A split node leaves the leaf volume; its halves were added above.
+        // A split node leaves the leaf volume (its halves were added above). Internal
+        // nodes are counted but carry no volume: their volumes would sum to more
+        // than the envelope (and overflow i64 for deep trees).
         if status == "split" {
             deltas.add(&h.campaign_id, "leased", -1, -vol);
-            deltas.add(&h.campaign_id, "split", 1, vol);
+            deltas.add(&h.campaign_id, "split", 1, 0);
         } else {
             deltas.moved(&h.campaign_id, "leased", status, vol);
         }

@@ -414,3 +414,70 @@ async fn leased_boxes_tile_the_envelope_exactly_on_the_wire() {
     }
     ts.server.stop().await.unwrap();
 }
+
+/// Drive with a custom rule until nothing is left.
+async fn drive_with(ts: &TestServer, rule: impl Fn(f64, f64) -> Value) {
+    loop {
+        let cells = lease(ts, 50).await;
+        if cells.is_empty() {
+            return;
+        }
+        let items: Vec<(String, Value)> = cells
+            .iter()
+            .map(|c| {
+                let h = &c["box"]["h"];
+                (c["lease_id"].as_str().unwrap().to_string(), rule(h[0].as_f64().unwrap(), h[1].as_f64().unwrap()))
+            })
+            .collect();
+        submit(ts, &items).await;
+    }
+}
+
+#[tokio::test]
+async fn depth_sixty_is_exact_and_uncuttable_cells_are_unresolved() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = start(config(dir.path())).await;
+    let model = upload_model(&ts, "deep").await;
+    let inconclusive = json!({"verdict": "inconclusive", "split_hint": {"dim": "h"}});
+    let safe = json!({"verdict": "safe"});
+
+    // Keep cutting the cell at h = 0 down to depth 60: everything else is safe.
+    let id = create_campaign(&ts, &spec(&model, 60), "").await;
+    drive_with(&ts, |lo, _| if lo == 0.0 { inconclusive.clone() } else { safe.clone() }).await;
+    let cov = coverage(&ts, &id).await;
+    let total: i64 = 1 << 60;
+    assert_eq!(cov["total_volume"], total);
+    assert_eq!(cov["statuses"]["safe"]["volume"], total - 1);
+    assert_eq!(cov["statuses"]["safe"]["exact"], format!("{}/2^60", total - 1));
+    assert_eq!(cov["statuses"]["unresolved"]["reduced"], format!("1/{total}"));
+    assert_eq!(cov["statuses"]["safe"]["cells"], 60);
+    assert_eq!(cov["split_cells"], 60);
+    let t = tiling(&ts, &id).await;
+    assert_eq!(t["ok"], true, "{t}");
+    let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?status=unresolved"), ts.token(Role::Viewer)).await;
+    let c = r.json()["cells"][0].clone();
+    assert_eq!(c["depth"], 60);
+    assert_eq!(c["box"]["h"], json!([0.0, 2f64.powi(-60)]));
+
+    // Around h = 0.3 the f64 grid runs out before depth 60 (spacing 2^-54 there): the
+    // last cell that cannot be cut becomes unresolved above max_depth.
+    let id = create_campaign(&ts, &spec(&model, 60), "").await;
+    drive_with(&ts, |lo, hi| if lo <= 0.3 && 0.3 <= hi { inconclusive.clone() } else { safe.clone() }).await;
+    let cov = coverage(&ts, &id).await;
+    let unresolved = &cov["statuses"]["unresolved"];
+    assert!(unresolved["cells"].as_i64().unwrap() >= 1);
+    assert_eq!(cov["leaf_volume_matches_total"], true);
+    assert_eq!(
+        cov["statuses"]["safe"]["volume"].as_i64().unwrap() + unresolved["volume"].as_i64().unwrap(),
+        total
+    );
+    let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?status=unresolved"), ts.token(Role::Viewer)).await;
+    for c in r.json()["cells"].as_array().unwrap() {
+        let d = c["depth"].as_i64().unwrap();
+        assert!(d < 60 && d > 40, "{c}");
+        let (lo, hi) = (c["box"]["h"][0].as_f64().unwrap(), c["box"]["h"][1].as_f64().unwrap());
+        assert_eq!(f64::from_bits(lo.to_bits() + 1), hi, "an uncut cell is one ulp wide: {c}");
+    }
+    assert_eq!(tiling(&ts, &id).await["ok"], true);
+    ts.server.stop().await.unwrap();
+}
