@@ -481,3 +481,40 @@ async fn depth_sixty_is_exact_and_uncuttable_cells_are_unresolved() {
     assert_eq!(tiling(&ts, &id).await["ok"], true);
     ts.server.stop().await.unwrap();
 }
+
+/// Eight workers at once on one campaign (max_depth 8). Hand computation as above on
+/// the grid of 1/256: safe = cells below 0.5 except [127/256, 1/2] → 127/256;
+/// unsafe = cells with lower end above 0.9, i.e. from 231/256 on → 25/256.
+#[tokio::test]
+async fn concurrent_workers_keep_the_accounting_exact() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = std::sync::Arc::new(start(config(dir.path())).await);
+    let model = upload_model(&ts, "conc").await;
+    let id = create_campaign(&ts, &spec(&model, 8), "").await;
+    let mut tasks = Vec::new();
+    for _ in 0..8 {
+        let ts = ts.clone();
+        tasks.push(tokio::spawn(async move {
+            // Stop only after several empty leases in a row: others may still be
+            // splitting cells.
+            let mut idle = 0;
+            while idle < 20 {
+                if drive(&ts, 3, Some(1)).await == 0 {
+                    idle += 1;
+                    tokio::time::sleep(std::time::Duration::from_millis(10)).await;
+                } else {
+                    idle = 0;
+                }
+            }
+        }));
+    }
+    for t in tasks {
+        t.await.unwrap();
+    }
+    let cov = coverage(&ts, &id).await;
+    assert_eq!(cov["state"], "done", "{cov}");
+    assert_eq!(cov["statuses"]["safe"]["exact"], "127/2^8");
+    assert_eq!(cov["statuses"]["unsafe"]["exact"], "25/2^8");
+    assert_eq!(cov["statuses"]["unresolved"]["exact"], "104/2^8");
+    assert_eq!(tiling(&ts, &id).await["ok"], true);
+}
