@@ -1,0 +1,199 @@
+//! Throughput benchmark of the campaign server (not a test).
+//!
+//! N synthetic workers on loopback lease batches, answer at once and submit, for a
+//! fixed time; prints sustained cells/s and lease/submit latency percentiles. Then,
+//! in the same run, the raw rate of the same batched SQLite work without HTTP.
+//!
+//!     cargo run --release -p tessera-server --example bench_server -- [--workers 8,64,256] [--seconds 15] [--batch 32]
+//!
+//! Verdicts are a deterministic function of the cell id: half inconclusive (split),
+//! a quarter safe, a quarter unsafe, so the queue neither drains nor explodes.
+
+use http_body_util::{BodyExt, Full};
+use hyper::body::Bytes;
+use hyper_util::client::legacy::Client;
+use hyper_util::rt::TokioExecutor;
+use serde_json::{json, Value};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+use tessera_server::auth::Role;
+use tessera_server::leases::{self, SubmitItem};
+use tessera_server::Config;
+
+fn verdict_for(cell_id: &str) -> Value {
+    let k = cell_id.bytes().fold(0u32, |h, b| h.wrapping_mul(31).wrapping_add(b as u32)) % 4;
+    match k {
+        0 | 1 => json!({"verdict": "inconclusive", "split_hint": {"dim": "h", "score": 1.0}, "stats": {}}),
+        2 => json!({"verdict": "safe", "stats": {}}),
+        _ => json!({"verdict": "unsafe", "counterexample": {"h": 0.0}, "stats": {}}),
+    }
+}
+
+fn spec(model: &str) -> Value {
+    json!({
+        "name": "bench",
+        "states": [{"name": "h"}, {"name": "v"}],
+        "inputs": [{"name": "q"}],
+        "dynamics": {"h": "q - 0.1 * h", "v": "0"},
+        "controller": {
+            "period": 0.5,
+            "observations": [{"name": "level", "expr": "h"}],
+            "networks": [format!("sha256:{model}")],
+            "selection": {"mode": "single"},
+            "decision": "argmax",
+            "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 0.2}}],
+            "initial_command": "off"
+        },
+        "unsafe": [{"all": ["h >= 2"]}],
+        "horizon_periods": 20,
+        "envelope": {"h": [0.0, 1.0], "v": [0.0, 1.0]},
+        "refinement": {"max_depth": 60, "split": ["h", "v"]}
+    })
+}
+
+fn pct(v: &mut [f64], p: f64) -> f64 {
+    if v.is_empty() {
+        return f64::NAN;
+    }
+    v.sort_by(|a, b| a.total_cmp(b));
+    v[((v.len() as f64 - 1.0) * p).round() as usize]
+}
+
+async fn http_run(workers: usize, seconds: u64, batch: u32) -> anyhow::Result<()> {
+    let dir = tempfile::tempdir()?;
+    let mut cfg = Config::for_tests(dir.path().join("bench.sqlite"));
+    cfg.max_lease_batch = batch.max(1);
+    let server = tessera_server::start(cfg).await?;
+    let store = server.state.store.clone();
+    let sub = store.create_token(Role::Submitter, "bench").await.map_err(|e| anyhow::anyhow!(e.detail))?;
+    let work = store.create_token(Role::Worker, "bench").await.map_err(|e| anyhow::anyhow!(e.detail))?;
+    let base = server.url();
+    let client: Client<_, Full<Bytes>> = Client::builder(TokioExecutor::new()).build_http();
+    let call = |client: Client<hyper_util::client::legacy::connect::HttpConnector, Full<Bytes>>, path: String, token: String, body: Vec<u8>| async move {
+        let req = hyper::Request::post(path)
+            .header("authorization", format!("Bearer {token}"))
+            .header("content-type", "application/json")
+            .body(Full::new(Bytes::from(body)))?;
+        let resp = client.request(req).await?;
+        let status = resp.status();
+        let bytes = resp.into_body().collect().await?.to_bytes();
+        anyhow::ensure!(status.is_success(), "{status}: {}", String::from_utf8_lossy(&bytes));
+        Ok::<Value, anyhow::Error>(serde_json::from_slice(&bytes)?)
+    };
+    let model = tessera_server::model_check::testing::tiny_model(1, 2, "bench");
+    let m = call(client.clone(), format!("{base}/api/v1/models"), sub.clone(), model).await?;
+    let model = m["sha256"].as_str().unwrap_or_default().to_string();
+    call(client.clone(), format!("{base}/api/v1/campaigns?initial_depth=14"), sub.clone(), spec(&model).to_string().into_bytes())
+        .await?;
+
+    let done = Arc::new(AtomicU64::new(0));
+    let deadline = Instant::now() + Duration::from_secs(seconds);
+    let t0 = Instant::now();
+    let mut tasks = Vec::new();
+    for w in 0..workers {
+        let (client, base, work, done) = (client.clone(), base.clone(), work.clone(), done.clone());
+        tasks.push(tokio::spawn(async move {
+            let mut lease_lat = Vec::new();
+            let mut submit_lat = Vec::new();
+            let name = format!("bench-{w}");
+            while Instant::now() < deadline {
+                let t = Instant::now();
+                let body = json!({"max": batch, "worker": name}).to_string().into_bytes();
+                let r = call(client.clone(), format!("{base}/api/v1/leases"), work.clone(), body).await?;
+                lease_lat.push(t.elapsed().as_secs_f64());
+                let cells = r["leases"].as_array().cloned().unwrap_or_default();
+                if cells.is_empty() {
+                    tokio::time::sleep(Duration::from_millis(5)).await;
+                    continue;
+                }
+                let results: Vec<Value> = cells
+                    .iter()
+                    .map(|c| json!({"lease_id": c["lease_id"], "result": verdict_for(c["cell_id"].as_str().unwrap_or(""))}))
+                    .collect();
+                let t = Instant::now();
+                let body = json!({"worker": name, "engine_version": "bench", "results": results}).to_string().into_bytes();
+                let r = call(client.clone(), format!("{base}/api/v1/results"), work.clone(), body).await?;
+                submit_lat.push(t.elapsed().as_secs_f64());
+                done.fetch_add(r["accepted"].as_u64().unwrap_or(0), Ordering::Relaxed);
+            }
+            Ok::<_, anyhow::Error>((lease_lat, submit_lat))
+        }));
+    }
+    let mut lease_lat = Vec::new();
+    let mut submit_lat = Vec::new();
+    for t in tasks {
+        let (l, s) = t.await??;
+        lease_lat.extend(l);
+        submit_lat.extend(s);
+    }
+    let elapsed = t0.elapsed().as_secs_f64();
+    let n = done.load(Ordering::Relaxed);
+    println!(
+        "http  workers={workers:4} batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s)  lease p50 {:.2} ms p99 {:.2} ms  submit p50 {:.2} ms p99 {:.2} ms",
+        n as f64 / elapsed,
+        pct(&mut lease_lat, 0.5) * 1e3,
+        pct(&mut lease_lat, 0.99) * 1e3,
+        pct(&mut submit_lat, 0.5) * 1e3,
+        pct(&mut submit_lat, 0.99) * 1e3,
+    );
+    server.stop().await?;
+    Ok(())
+}
+
+/// The same lease/submit transactions, called directly on the store.
+async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
+    let dir = tempfile::tempdir()?;
+    let cfg = Config::for_tests(dir.path().join("raw.sqlite"));
+    let store = tessera_server::Store::open(&cfg.db).await?;
+    let sha = store
+        .put_model(&tessera_server::model_check::testing::tiny_model(1, 2, "raw"), Some(1), Some(2))
+        .await
+        .map_err(|e| anyhow::anyhow!(e.detail))?;
+    tessera_server::campaigns::create(
+        &store,
+        60,
+        u64::MAX / 4,
+        spec(&sha).to_string().as_bytes(),
+        tessera_server::campaigns::CreateOptions { priority: 0, initial_depth: 14 },
+    )
+    .await
+    .map_err(|e| anyhow::anyhow!(e.detail))?;
+    let limits = leases::QueueLimits { lease_ms: 120_000, max_attempts: 3, max_cells_per_campaign: u64::MAX / 4 };
+    let t0 = Instant::now();
+    let mut n = 0u64;
+    while t0.elapsed() < Duration::from_secs(seconds) {
+        let (cells, _) = leases::lease(&store, limits, batch, "raw", None).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        let items: Vec<SubmitItem> = cells
+            .iter()
+            .map(|c| SubmitItem { lease_id: c.lease_id.clone(), result: verdict_for(&c.cell_id), elapsed_ms: None })
+            .collect();
+        let (_, stats) =
+            leases::submit(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        n += stats.accepted;
+    }
+    let elapsed = t0.elapsed().as_secs_f64();
+    println!("raw   (no HTTP)     batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s)", n as f64 / elapsed);
+    store.close().await;
+    Ok(())
+}
+
+#[tokio::main]
+async fn main() -> anyhow::Result<()> {
+    let args: Vec<String> = std::env::args().collect();
+    let arg = |name: &str| args.iter().position(|a| a == name).and_then(|i| args.get(i + 1)).cloned();
+    let workers: Vec<usize> = arg("--workers")
+        .unwrap_or_else(|| "8,64,256".into())
+        .split(',')
+        .filter_map(|s| s.trim().parse().ok())
+        .collect();
+    let seconds: u64 = arg("--seconds").and_then(|s| s.parse().ok()).unwrap_or(15);
+    let batch: u32 = arg("--batch").and_then(|s| s.parse().ok()).unwrap_or(32);
+    println!("tessera-server benchmark: {seconds} s per run, loopback, server and workers in one process");
+    for w in workers {
+        http_run(w, seconds, batch).await?;
+    }
+    raw_run(seconds.min(10), batch).await?;
+    raw_run(seconds.min(10), 256).await?;
+    Ok(())
+}

@@ -1,0 +1,666 @@
+//! Campaigns: creation (validation against stored models), state changes, and the
+//! read views: coverage, cells, counterexamples, report, tiling check.
+
+use crate::error::{ApiError, ApiResult};
+use crate::leases::{self, QueueLimits};
+use crate::model_check;
+use crate::refine::{self, CellBox};
+use crate::store::{now_ms, CampaignInfo, Deltas, Store, ALL_STATUSES, LEAF_STATUSES};
+use serde::Serialize;
+use serde_json::{json, Value};
+use sha2::Digest;
+use sqlx::Row;
+use std::collections::HashMap;
+use tessera_worker::engine::spec::{self, NetworkShape};
+
+/// The safety caution carried by every report.
+pub const CAUTION: &str = "These results are engineering evidence under the stated model assumptions \
+(dynamics, disturbance and noise bounds, envelope, horizon, and the networks as uploaded), not a \
+certification. They defer to the applicable safety standards and to the responsible certification authority.";
+
+/// Deepest uniform pre-split allowed at creation (2^16 leaves).
+pub const MAX_INITIAL_DEPTH: u32 = 16;
+
+/// Options of campaign creation besides the spec.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct CreateOptions {
+    pub priority: i64,
+    /// Cut the envelope uniformly to this depth before any cell is leased.
+    pub initial_depth: u32,
+}
+
+/// Validate `body` as a spec whose networks are uploaded models, and create the
+/// campaign with its root cell (or a uniform tree down to `initial_depth`).
+/// Every problem is a 4xx [`ApiError`] naming the JSON path at fault.
+pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &[u8], opts: CreateOptions) -> ApiResult<Value> {
+    let text = std::str::from_utf8(body)
+        .map_err(|e| ApiError::bad_request(format!("the spec must be UTF-8 JSON: {e}")))?;
+    let spec = spec::parse_spec(text).map_err(ApiError::invalid_spec)?;
+
+    let mut shapes: Vec<Option<NetworkShape>> = Vec::new();
+    for (i, r) in spec.networks.iter().enumerate() {
+        let field = format!("controller.networks[{i}]");
+        let Some(hash) = r.strip_prefix("sha256:") else {
+            return Err(ApiError::unprocessable(
+                "model_ref",
+                format!("'{r}': a campaign refers to uploaded models as 'sha256:HEX' (upload with POST /api/v1/models)"),
+            )
+            .field(field));
+        };
+        match store.model_shape(hash).await? {
+            None => {
+                return Err(ApiError::unprocessable("model_not_found", format!("no uploaded model with sha256 {hash}"))
+                    .field(field))
+            }
+            Some((Some(i), Some(o))) => shapes.push(Some(NetworkShape { inputs: i as usize, outputs: o as usize })),
+            Some(_) => shapes.push(None),
+        }
+    }
+    if shapes.iter().all(|s| s.is_some()) {
+        let known: Vec<NetworkShape> = shapes.iter().flatten().copied().collect();
+        spec.check_networks(&known).map_err(ApiError::invalid_spec)?;
+    }
+    if spec.max_depth > max_depth_limit {
+        return Err(ApiError::unprocessable(
+            "limit",
+            format!("refinement.max_depth {} is above this server's limit {max_depth_limit}", spec.max_depth),
+        )
+        .field("refinement.max_depth"));
+    }
+    let initial = opts.initial_depth;
+    if initial > spec.max_depth || initial > MAX_INITIAL_DEPTH || (1u64 << (initial + 1)) > max_cells {
+        return Err(ApiError::bad_request(format!(
+            "initial_depth {initial} must be at most max_depth ({}) and {MAX_INITIAL_DEPTH}, and fit the cell limit",
+            spec.max_depth
+        ))
+        .field("initial_depth"));
+    }
+
+    let canonical = spec.canonical_json();
+    let hash = hex::encode(sha2::Sha256::digest(canonical.as_bytes()));
+    let id = uuid::Uuid::new_v4().to_string();
+    let info = CampaignInfo::from_spec(&id, &hash, &spec);
+    let now = now_ms();
+
+    // The initial tree: root, then uniform cuts down to `initial`.
+    struct Node {
+        id: String,
+        parent: Option<String>,
+        depth: u32,
+        cell: CellBox,
+        status: &'static str,
+        split_dim: Option<i64>,
+    }
+    let mut nodes = vec![Node {
+        id: uuid::Uuid::new_v4().to_string(),
+        parent: None,
+        depth: 0,
+        cell: info.split_envelope.clone(),
+        status: "pending",
+        split_dim: None,
+    }];
+    let mut frontier = vec![0usize];
+    for _ in 0..initial {
+        let mut next = Vec::new();
+        for k in frontier {
+            let Some(d) = refine::choose_dim(&nodes[k].cell, &info.split_envelope, None) else { continue };
+            let Some((a, b)) = refine::bisect(&nodes[k].cell, d) else { continue };
+            nodes[k].status = "split";
+            nodes[k].split_dim = Some(d as i64);
+            let (pid, depth) = (nodes[k].id.clone(), nodes[k].depth + 1);
+            for c in [a, b] {
+                next.push(nodes.len());
+                nodes.push(Node {
+                    id: uuid::Uuid::new_v4().to_string(),
+                    parent: Some(pid.clone()),
+                    depth,
+                    cell: c,
+                    status: "pending",
+                    split_dim: None,
+                });
+            }
+        }
+        frontier = next;
+    }
+
+    let mut w = store.write().await?;
+    sqlx::query(
+        "INSERT INTO campaigns (id, name, spec_json, spec_hash, state, priority, max_depth, created_at, updated_at)
+         VALUES (?, ?, ?, ?, 'running', ?, ?, ?, ?)",
+    )
+    .bind(&id)
+    .bind(&spec.doc.name)
+    .bind(&canonical)
+    .bind(&hash)
+    .bind(opts.priority)
+    .bind(spec.max_depth as i64)
+    .bind(now)
+    .bind(now)
+    .execute(&mut *w.tx)
+    .await?;
+    let mut counts: HashMap<&str, (i64, i64)> = ALL_STATUSES.iter().map(|s| (*s, (0, 0))).collect();
+    for n in &nodes {
+        let e = counts.entry(n.status).or_insert((0, 0));
+        e.0 += 1;
+        if n.status != "split" {
+            e.1 += refine::volume(spec.max_depth, n.depth);
+        }
+    }
+    for s in ALL_STATUSES {
+        let (c, v) = counts[s];
+        sqlx::query("INSERT INTO campaign_counters (campaign_id, status, cells, volume) VALUES (?, ?, ?, ?)")
+            .bind(&id)
+            .bind(s)
+            .bind(c)
+            .bind(v)
+            .execute(&mut *w.tx)
+            .await?;
+    }
+    for chunk in nodes.chunks(400) {
+        let sql = format!(
+            "INSERT INTO cells (id, campaign_id, parent_id, depth, box, status, split_dim, created_at, updated_at) VALUES {}",
+            vec!["(?, ?, ?, ?, ?, ?, ?, ?, ?)"; chunk.len()].join(", ")
+        );
+        let mut q = sqlx::query(&sql);
+        for n in chunk {
+            q = q
+                .bind(n.id.as_str())
+                .bind(id.as_str())
+                .bind(n.parent.clone())
+                .bind(n.depth as i64)
+                .bind(refine::encode_box(&n.cell))
+                .bind(n.status)
+                .bind(n.split_dim)
+                .bind(now)
+                .bind(now);
+        }
+        q.execute(&mut *w.tx).await?;
+    }
+    w.commit().await?;
+    get(store, &id).await
+}
+
+/// Check that `bytes` is a model, for upload.
+pub fn inspect_upload(bytes: &[u8]) -> ApiResult<NetworkShape> {
+    model_check::inspect_model(bytes).map_err(|e| ApiError::unprocessable("invalid_model", e).field("body"))
+}
+
+fn campaign_json(r: &sqlx::sqlite::SqliteRow, counts: &HashMap<String, (i64, i64)>) -> ApiResult<Value> {
+    let cells: serde_json::Map<String, Value> =
+        ALL_STATUSES.iter().map(|s| (s.to_string(), json!(counts.get(*s).map(|c| c.0).unwrap_or(0)))).collect();
+    Ok(json!({
+        "id": r.try_get::<String, _>("id")?,
+        "name": r.try_get::<String, _>("name")?,
+        "state": r.try_get::<String, _>("state")?,
+        "priority": r.try_get::<i64, _>("priority")?,
+        "spec_hash": r.try_get::<String, _>("spec_hash")?,
+        "max_depth": r.try_get::<i64, _>("max_depth")?,
+        "results_count": r.try_get::<i64, _>("results_count")?,
+        "created_at_ms": r.try_get::<i64, _>("created_at")?,
+        "updated_at_ms": r.try_get::<i64, _>("updated_at")?,
+        "finished_at_ms": r.try_get::<Option<i64>, _>("finished_at")?,
+        "cells": cells,
+    }))
+}
+
+const CAMPAIGN_COLS: &str =
+    "id, name, state, priority, spec_hash, max_depth, results_count, created_at, updated_at, finished_at, first_result_at, last_result_at";
+
+/// One campaign's summary; 404 when unknown.
+pub async fn get(store: &Store, id: &str) -> ApiResult<Value> {
+    let row = sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
+        .bind(id)
+        .fetch_optional(&store.pool)
+        .await?
+        .ok_or_else(|| ApiError::not_found("campaign", id))?;
+    campaign_json(&row, &store.counters(id).await?)
+}
+
+/// All campaigns, newest first, optionally of one state.
+pub async fn list(store: &Store, state: Option<&str>) -> ApiResult<Value> {
+    let rows = sqlx::query(&format!(
+        "SELECT {CAMPAIGN_COLS} FROM campaigns WHERE (?1 IS NULL OR state = ?1) ORDER BY created_at DESC, id LIMIT 1000"
+    ))
+    .bind(state)
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::new();
+    for r in &rows {
+        let id: String = r.try_get("id")?;
+        out.push(campaign_json(r, &store.counters(&id).await?)?);
+    }
+    Ok(json!({ "campaigns": out }))
+}
+
+/// The stored (canonical) spec document and its hash.
+pub async fn spec_of(store: &Store, id: &str) -> ApiResult<(String, String)> {
+    let row = sqlx::query("SELECT spec_json, spec_hash FROM campaigns WHERE id = ?")
+        .bind(id)
+        .fetch_optional(&store.pool)
+        .await?
+        .ok_or_else(|| ApiError::not_found("campaign", id))?;
+    Ok((row.try_get(0)?, row.try_get(1)?))
+}
+
+/// Change a campaign's state: `pause` (running → paused), `resume` (paused →
+/// running), `cancel` (running/paused → cancelled, leases withdrawn). Asking for the
+/// state it is already in is accepted; other changes are 409.
+pub async fn transition(store: &Store, limits: QueueLimits, id: &str, action: &str) -> ApiResult<Value> {
+    let mut w = store.write().await?;
+    let state: String = sqlx::query_scalar("SELECT state FROM campaigns WHERE id = ?")
+        .bind(id)
+        .fetch_optional(&mut *w.tx)
+        .await?
+        .ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let (from, to): (&[&str], &str) = match action {
+        "pause" => (&["running"], "paused"),
+        "resume" => (&["paused"], "running"),
+        _ => (&["running", "paused"], "cancelled"),
+    };
+    if state != to {
+        if !from.contains(&state.as_str()) {
+            return Err(ApiError::conflict(format!("cannot {action} a campaign that is {state}")).field("state"));
+        }
+        sqlx::query("UPDATE campaigns SET state = ?, updated_at = ? WHERE id = ?")
+            .bind(to)
+            .bind(now_ms())
+            .bind(id)
+            .execute(&mut *w.tx)
+            .await?;
+        if to == "cancelled" {
+            let mut deltas = Deltas::default();
+            leases::withdraw_leases(store, &mut w.tx, limits, id, &mut deltas).await?;
+            // Counters only; a cancelled campaign is not marked done.
+            deltas.apply(&mut w.tx).await?;
+        }
+    }
+    w.commit().await?;
+    get(store, id).await
+}
+
+#[derive(Serialize)]
+struct StatusCoverage {
+    cells: i64,
+    /// Integer volume: the fraction is volume / 2^max_depth.
+    volume: i64,
+    fraction: f64,
+    /// `volume/2^max_depth`, exact.
+    exact: String,
+    /// The same fraction in lowest terms.
+    reduced: String,
+}
+
+/// Coverage: per-status cells and exact volume fractions, rates and an estimate of
+/// the time left. O(1) in the number of cells.
+pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
+    let row = sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
+        .bind(id)
+        .fetch_optional(&store.pool)
+        .await?
+        .ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let d = row.try_get::<i64, _>("max_depth")? as u32;
+    let counts = store.counters(id).await?;
+    let total = refine::volume(d, 0);
+    let mut statuses = serde_json::Map::new();
+    let mut leaves = 0;
+    let mut leaf_volume = 0;
+    for s in LEAF_STATUSES {
+        let (c, v) = counts.get(s).copied().unwrap_or((0, 0));
+        leaves += c;
+        leaf_volume += v;
+        let sc = StatusCoverage {
+            cells: c,
+            volume: v,
+            fraction: v as f64 / total as f64,
+            exact: format!("{v}/2^{d}"),
+            reduced: refine::reduced_fraction(v, d),
+        };
+        statuses.insert(s.to_string(), serde_json::to_value(sc).map_err(ApiError::internal)?);
+    }
+    let vol = |s: &str| counts.get(s).map(|c| c.1).unwrap_or(0);
+    let open = vol("pending") + vol("leased");
+    let resolved = leaf_volume - open;
+    let results: i64 = row.try_get("results_count")?;
+    let first: Option<i64> = row.try_get("first_result_at")?;
+    let last: Option<i64> = row.try_get("last_result_at")?;
+    let created: i64 = row.try_get("created_at")?;
+    let state: String = row.try_get("state")?;
+    let end = if state == "running" || state == "paused" { now_ms() } else { last.unwrap_or(created) };
+    let span_s = first.map(|f| (end - f) as f64 / 1000.0).filter(|s| *s > 0.0);
+    let cells_per_second = span_s.map(|s| results as f64 / s);
+    let volume_per_second = span_s.map(|s| resolved as f64 / total as f64 / s);
+    let eta = match (volume_per_second, open) {
+        (_, 0) => Some(0.0),
+        (Some(r), _) if r > 0.0 => Some(open as f64 / total as f64 / r),
+        _ => None,
+    };
+    Ok(json!({
+        "campaign_id": id,
+        "state": state,
+        "max_depth": d,
+        "total_volume": total,
+        "total_exact": format!("2^{d}"),
+        "statuses": statuses,
+        "leaves": leaves,
+        "split_cells": counts.get("split").map(|c| c.0).unwrap_or(0),
+        "leaf_volume_matches_total": leaf_volume == total,
+        "results": results,
+        "cells_per_second": cells_per_second,
+        "fraction_per_second": volume_per_second,
+        "estimated_seconds_remaining": eta,
+        "estimate_note": "time left = open volume / resolved volume per second since the first result; deeper cells resolve less volume each, so this is a rough estimate",
+    }))
+}
+
+/// Cells of a campaign filtered by status and depth, in creation order, paginated
+/// by `after` (the `next_after` of the previous page).
+pub async fn cells(
+    store: &Store,
+    id: &str,
+    status: Option<&str>,
+    depth: Option<i64>,
+    limit: i64,
+    after: i64,
+) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    if let Some(s) = status {
+        if !ALL_STATUSES.contains(&s) {
+            return Err(ApiError::bad_request(format!("unknown status '{s}' (one of {})", ALL_STATUSES.join(", ")))
+                .field("status"));
+        }
+    }
+    let rows = sqlx::query(
+        "SELECT c.rowid, c.id, c.parent_id, c.depth, c.box, c.status, c.split_dim, c.attempts, c.last_error,
+                c.lease_expires_at, r.verdict_json
+         FROM cells c LEFT JOIN results r ON r.id = c.result_id
+         WHERE c.campaign_id = ?1 AND c.rowid > ?2 AND (?3 IS NULL OR c.status = ?3) AND (?4 IS NULL OR c.depth = ?4)
+         ORDER BY c.rowid LIMIT ?5",
+    )
+    .bind(id)
+    .bind(after)
+    .bind(status)
+    .bind(depth)
+    .bind(limit)
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::new();
+    let mut last = None;
+    for r in &rows {
+        let rowid: i64 = r.try_get(0)?;
+        last = Some(rowid);
+        let b: Vec<u8> = r.try_get(4)?;
+        let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
+        let verdict: Option<String> = r.try_get(10)?;
+        let split_dim: Option<i64> = r.try_get(6)?;
+        out.push(json!({
+            "id": r.try_get::<String, _>(1)?,
+            "parent_id": r.try_get::<Option<String>, _>(2)?,
+            "depth": r.try_get::<i64, _>(3)?,
+            "box": info.full_box(&cell),
+            "status": r.try_get::<String, _>(5)?,
+            "split_state": split_dim.and_then(|d| info.split.get(d as usize)).map(|&k| info.states[k].clone()),
+            "attempts": r.try_get::<i64, _>(7)?,
+            "last_error": r.try_get::<Option<String>, _>(8)?,
+            "lease_expires_at_ms": r.try_get::<Option<i64>, _>(9)?,
+            "result": verdict.and_then(|v| serde_json::from_str::<Value>(&v).ok()),
+        }));
+    }
+    let next = if rows.len() as i64 == limit { last } else { None };
+    Ok(json!({ "cells": out, "next_after": next }))
+}
+
+/// Results with verdict `unsafe`, with their cells' boxes, oldest first.
+pub async fn counterexamples(store: &Store, id: &str, limit: i64, after: i64) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let rows = sqlx::query(
+        "SELECT r.rowid, r.id, r.cell_id, r.verdict_json, r.worker, r.received_at, c.depth, c.box, c.status
+         FROM results r JOIN cells c ON c.id = r.cell_id
+         WHERE r.campaign_id = ? AND r.kind = 'unsafe' AND r.rowid > ? ORDER BY r.rowid LIMIT ?",
+    )
+    .bind(id)
+    .bind(after)
+    .bind(limit)
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::new();
+    let mut last = None;
+    for r in &rows {
+        last = Some(r.try_get::<i64, _>(0)?);
+        let v: Value = serde_json::from_str(&r.try_get::<String, _>(3)?).unwrap_or(Value::Null);
+        let b: Vec<u8> = r.try_get(7)?;
+        let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
+        out.push(json!({
+            "result_id": r.try_get::<String, _>(1)?,
+            "cell_id": r.try_get::<String, _>(2)?,
+            "depth": r.try_get::<i64, _>(6)?,
+            "box": info.full_box(&cell),
+            "cell_status": r.try_get::<String, _>(8)?,
+            "reason": v.get("reason").cloned().unwrap_or(Value::Null),
+            "counterexample": v.get("counterexample").cloned().unwrap_or(Value::Null),
+            "worker": r.try_get::<String, _>(4)?,
+            "received_at_ms": r.try_get::<i64, _>(5)?,
+        }));
+    }
+    let next = if rows.len() as i64 == limit { last } else { None };
+    Ok(json!({ "counterexamples": out, "next_after": next }))
+}
+
+/// The campaign report as JSON: identity (spec and model hashes, versions), times,
+/// coverage, counterexamples (first 100) and the safety caution.
+pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
+    let campaign = get(store, id).await?;
+    let cov = coverage(store, id).await?;
+    let (spec_json, spec_hash) = spec_of(store, id).await?;
+    let doc: Value = serde_json::from_str(&spec_json).unwrap_or(Value::Null);
+    let models: Vec<Value> = doc["controller"]["networks"]
+        .as_array()
+        .map(|a| a.iter().map(|n| json!(n.as_str().unwrap_or("").trim_start_matches("sha256:"))).collect())
+        .unwrap_or_default();
+    let engines: Vec<Option<String>> = sqlx::query_scalar(
+        "SELECT DISTINCT engine_version FROM results WHERE campaign_id = ? ORDER BY engine_version LIMIT 20",
+    )
+    .bind(id)
+    .fetch_all(&store.pool)
+    .await?;
+    let engines: Vec<String> = engines.into_iter().map(|e| e.unwrap_or_else(|| "unreported".into())).collect();
+    let cex = counterexamples(store, id, 100, 0).await?;
+    Ok(json!({
+        "report_version": 1,
+        "caution": CAUTION,
+        "campaign": campaign,
+        "spec_name": doc["name"],
+        "spec_hash": spec_hash,
+        "model_sha256": models,
+        "server_version": env!("CARGO_PKG_VERSION"),
+        "engine_versions": engines,
+        "generated_at_ms": now_ms(),
+        "horizon_periods": doc["horizon_periods"],
+        "envelope": doc["envelope"],
+        "split": doc["refinement"]["split"],
+        "coverage": cov,
+        "counterexamples": cex["counterexamples"],
+    }))
+}
+
+fn ms_text(v: &Value) -> String {
+    match v.as_i64() {
+        Some(ms) => format!("{ms} ms since the Unix epoch"),
+        None => "—".into(),
+    }
+}
+
+/// The report as Markdown.
+pub fn report_markdown(r: &Value) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    let c = &r["campaign"];
+    let _ = writeln!(s, "# Verification report: {}\n", r["spec_name"].as_str().unwrap_or("?"));
+    let _ = writeln!(s, "> **Caution.** {}\n", CAUTION);
+    let _ = writeln!(s, "| | |\n|---|---|");
+    let _ = writeln!(s, "| Campaign | `{}` |", c["id"].as_str().unwrap_or(""));
+    let _ = writeln!(s, "| State | {} |", c["state"].as_str().unwrap_or(""));
+    let _ = writeln!(s, "| Spec SHA-256 | `{}` |", r["spec_hash"].as_str().unwrap_or(""));
+    for (i, m) in r["model_sha256"].as_array().into_iter().flatten().enumerate() {
+        let _ = writeln!(s, "| Network {i} SHA-256 | `{}` |", m.as_str().unwrap_or(""));
+    }
+    let _ = writeln!(s, "| Server version | {} |", r["server_version"].as_str().unwrap_or(""));
+    let engines: Vec<&str> = r["engine_versions"].as_array().into_iter().flatten().filter_map(|v| v.as_str()).collect();
+    let _ = writeln!(s, "| Engine version(s) | {} |", if engines.is_empty() { "none yet".into() } else { engines.join(", ") });
+    let _ = writeln!(s, "| Horizon | {} control periods |", r["horizon_periods"]);
+    let _ = writeln!(s, "| Envelope | `{}` |", r["envelope"]);
+    let _ = writeln!(s, "| Split states | `{}` |", r["split"]);
+    let _ = writeln!(s, "| Created | {} |", ms_text(&c["created_at_ms"]));
+    let _ = writeln!(s, "| Finished | {} |", ms_text(&c["finished_at_ms"]));
+    let _ = writeln!(s, "| Report generated | {} |\n", ms_text(&r["generated_at_ms"]));
+    let cov = &r["coverage"];
+    let _ = writeln!(s, "## Coverage of the envelope (over the split states)\n");
+    let _ = writeln!(s, "| Status | Cells | Fraction | Exact |\n|---|---:|---:|---|");
+    for st in LEAF_STATUSES {
+        let x = &cov["statuses"][st];
+        let _ = writeln!(
+            s,
+            "| {st} | {} | {:.6} | {} |",
+            x["cells"],
+            x["fraction"].as_f64().unwrap_or(0.0),
+            x["reduced"].as_str().unwrap_or("")
+        );
+    }
+    let _ = writeln!(
+        s,
+        "\nInternal (split) cells: {}. Results received: {}.\n",
+        cov["split_cells"], cov["results"]
+    );
+    let _ = writeln!(s, "A fraction counts a cell at depth d as 2^-d of the envelope: cells are halves of halves.\n");
+    let cex = r["counterexamples"].as_array().cloned().unwrap_or_default();
+    let _ = writeln!(s, "## Counterexamples ({} shown)\n", cex.len());
+    if cex.is_empty() {
+        let _ = writeln!(s, "None found.");
+    }
+    for (i, x) in cex.iter().enumerate() {
+        let _ = writeln!(s, "{}. cell `{}` (depth {}), box `{}`", i + 1, x["cell_id"].as_str().unwrap_or(""), x["depth"], x["box"]);
+        if !x["reason"].is_null() {
+            let _ = writeln!(s, "   - reason: {}", x["reason"]);
+        }
+        if !x["counterexample"].is_null() {
+            let _ = writeln!(s, "   - counterexample: `{}`", x["counterexample"]);
+        }
+    }
+    s
+}
+
+/// Check that the leaves tile the envelope exactly once: one root equal to the
+/// envelope, every split cell has exactly two children that are its two halves,
+/// no other cell has children, leaf volumes sum to 2^max_depth, and the stored
+/// counters equal a recount.
+pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let rows = sqlx::query("SELECT id, parent_id, depth, box, status FROM cells WHERE campaign_id = ?")
+        .bind(id)
+        .fetch_all(&store.pool)
+        .await?;
+    struct C {
+        parent: Option<String>,
+        depth: u32,
+        cell: CellBox,
+        status: String,
+        children: Vec<String>,
+    }
+    let mut cells: HashMap<String, C> = HashMap::with_capacity(rows.len());
+    let mut problems: Vec<String> = Vec::new();
+    for r in &rows {
+        let b: Vec<u8> = r.try_get(3)?;
+        let cid: String = r.try_get(0)?;
+        let Some(cell) = refine::decode_box(&b) else {
+            problems.push(format!("cell {cid}: corrupt box"));
+            continue;
+        };
+        cells.insert(
+            cid,
+            C {
+                parent: r.try_get(1)?,
+                depth: r.try_get::<i64, _>(2)? as u32,
+                cell,
+                status: r.try_get(4)?,
+                children: Vec::new(),
+            },
+        );
+    }
+    let links: Vec<(String, String)> =
+        cells.iter().filter_map(|(k, c)| c.parent.clone().map(|p| (p, k.clone()))).collect();
+    let mut roots = 0;
+    for (k, c) in &cells {
+        if c.parent.is_none() {
+            roots += 1;
+            if c.depth != 0 || c.cell != info.split_envelope {
+                problems.push(format!("root {k} is not the envelope at depth 0"));
+            }
+        }
+        if c.depth > info.max_depth {
+            problems.push(format!("cell {k} is deeper ({}) than max_depth", c.depth));
+        }
+    }
+    if roots != 1 {
+        problems.push(format!("{roots} root cells (expected 1)"));
+    }
+    for (p, k) in links {
+        match cells.get_mut(&p) {
+            Some(pc) => pc.children.push(k),
+            None => problems.push(format!("cell {k}: parent {p} missing")),
+        }
+    }
+    let mut counts: HashMap<String, (i64, i64)> = HashMap::new();
+    let mut leaf_volume: i64 = 0;
+    for (k, c) in &cells {
+        let vol = refine::volume(info.max_depth, c.depth.min(info.max_depth));
+        let e = counts.entry(c.status.clone()).or_insert((0, 0));
+        e.0 += 1;
+        if c.status != "split" {
+            e.1 += vol;
+        }
+        if c.status == "split" {
+            if c.children.len() != 2 {
+                problems.push(format!("split cell {k} has {} children (expected 2)", c.children.len()));
+                continue;
+            }
+            let (a, b) = (&cells[&c.children[0]], &cells[&c.children[1]]);
+            if a.depth != c.depth + 1 || b.depth != c.depth + 1 {
+                problems.push(format!("children of {k} are not one level deeper"));
+            }
+            if refine::halves_of(&c.cell, &a.cell, &b.cell).is_none() {
+                problems.push(format!("children of {k} are not its two halves"));
+            }
+        } else {
+            leaf_volume += vol;
+            if !c.children.is_empty() {
+                problems.push(format!("leaf {k} ({}) has children", c.status));
+            }
+        }
+    }
+    let total = refine::volume(info.max_depth, 0);
+    if leaf_volume != total {
+        problems.push(format!("leaf volumes sum to {leaf_volume}, expected {total}"));
+    }
+    let stored = store.counters(id).await?;
+    let mut counters_match = true;
+    for s in ALL_STATUSES {
+        let a = stored.get(s).copied().unwrap_or((0, 0));
+        let b = counts.get(s).copied().unwrap_or((0, 0));
+        if a != b {
+            counters_match = false;
+            problems.push(format!("counter '{s}' is {a:?} but a recount gives {b:?}"));
+        }
+    }
+    let n_problems = problems.len();
+    problems.truncate(50);
+    Ok(json!({
+        "campaign_id": id,
+        "ok": n_problems == 0,
+        "cells": cells.len(),
+        "leaves": cells.values().filter(|c| c.status != "split").count(),
+        "leaf_volume": leaf_volume,
+        "total_volume": total,
+        "counters_match": counters_match,
+        "problem_count": n_problems,
+        "problems": problems,
+    }))
+}

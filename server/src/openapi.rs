@@ -1,0 +1,80 @@
+//! The OpenAPI 3 document, built from the same route table as the router.
+
+use crate::api::{BodyKind, Route};
+use crate::auth::Access;
+use serde_json::{json, Map, Value};
+
+fn path_params(path: &str) -> Vec<String> {
+    path.split('/').filter_map(|seg| seg.strip_prefix('{').and_then(|s| s.strip_suffix('}'))).map(String::from).collect()
+}
+
+/// An OpenAPI 3.0 document listing every route of `routes`.
+pub fn document(routes: &[Route]) -> Value {
+    let mut paths = Map::new();
+    for r in routes {
+        let mut params: Vec<Value> = path_params(r.path)
+            .into_iter()
+            .map(|p| json!({"name": p, "in": "path", "required": true, "schema": {"type": "string"}}))
+            .collect();
+        for (name, desc) in r.query {
+            params.push(json!({"name": name, "in": "query", "required": false, "description": desc, "schema": {"type": "string"}}));
+        }
+        let mut op = json!({
+            "summary": r.summary,
+            "operationId": format!("{}_{}", r.method.as_str().to_lowercase(),
+                r.path.trim_start_matches('/').replace(['/', '.', '{', '}'], "_")),
+            "parameters": params,
+            "x-roles": r.access.roles(),
+            "responses": {
+                "200": {"description": "success", "content": {r.produces: {}}},
+                "4XX": {"description": "bad request, unauthorized, forbidden, not found, conflict, too large, invalid",
+                        "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Error"}}}}
+            }
+        });
+        if r.access == Access::Public {
+            op["security"] = json!([]);
+        }
+        match r.body {
+            BodyKind::None => {}
+            BodyKind::Binary => {
+                op["requestBody"] = json!({"required": true, "content": {"application/octet-stream": {"schema": {"type": "string", "format": "binary"}}}})
+            }
+            BodyKind::Json(schema) => {
+                op["requestBody"] = json!({"required": true, "content": {"application/json": {"schema": {"$ref": format!("#/components/schemas/{schema}")}}}})
+            }
+        }
+        let entry = paths.entry(r.path.to_string()).or_insert_with(|| json!({}));
+        entry[r.method.as_str().to_lowercase()] = op;
+    }
+    json!({
+        "openapi": "3.0.3",
+        "info": {
+            "title": "Tessera campaign server",
+            "version": env!("CARGO_PKG_VERSION"),
+            "description": "Campaigns, cells, leases and exact coverage accounting. Results are engineering evidence under the stated model assumptions, not a certification; they defer to the applicable safety standards and the responsible certification authority."
+        },
+        "security": [{"bearer": []}],
+        "paths": paths,
+        "components": {
+            "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer"}},
+            "schemas": {
+                "Error": {"type": "object", "required": ["error", "detail"], "properties": {
+                    "error": {"type": "string"}, "detail": {"type": "string"}, "field": {"type": "string"},
+                    "errors": {"type": "array", "items": {"type": "object", "properties": {"path": {"type": "string"}, "message": {"type": "string"}}}}}},
+                "Spec": {"type": "object", "description": "Campaign spec v1; controller.networks entries are sha256:HEX refs of uploaded models"},
+                "LeaseRequest": {"type": "object", "required": ["max"], "properties": {
+                    "max": {"type": "integer", "minimum": 1}, "worker": {"type": "string"}, "campaign_id": {"type": "string"}}},
+                "ExtendRequest": {"type": "object", "required": ["lease_ids"], "properties": {
+                    "lease_ids": {"type": "array", "items": {"type": "string"}}}},
+                "SubmitRequest": {"type": "object", "required": ["results"], "properties": {
+                    "worker": {"type": "string"}, "engine_version": {"type": "string"},
+                    "results": {"type": "array", "items": {"type": "object", "required": ["lease_id", "result"], "properties": {
+                        "lease_id": {"type": "string"},
+                        "result": {"type": "object", "description": "verdict JSON {verdict, reason, split_hint, counterexample, stats} or {error}"},
+                        "elapsed_ms": {"type": "number"}}}}}},
+                "TokenRequest": {"type": "object", "required": ["role"], "properties": {
+                    "role": {"type": "string", "enum": ["admin", "submitter", "worker", "viewer"]}, "label": {"type": "string"}}}
+            }
+        }
+    })
+}

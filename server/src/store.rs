@@ -1,0 +1,326 @@
+//! The SQLite store: connection pool, migrations, models, tokens, campaign metadata
+//! and the exact per-status counters. Cell transitions live in [`crate::leases`].
+//!
+//! Writes are serialised by one async mutex (SQLite has one writer anyway; queueing
+//! in the server avoids busy-waiting), and each write is one `BEGIN IMMEDIATE`
+//! transaction. Reads go to the pool and, in WAL mode, never wait for the writer.
+
+use crate::auth::{self, Role};
+use crate::error::{ApiError, ApiResult};
+use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
+use sqlx::{Row, Sqlite, SqlitePool, Transaction};
+use std::collections::HashMap;
+use std::path::Path;
+use std::sync::{Arc, RwLock};
+use std::time::Duration;
+
+/// Cell statuses of leaves (counted in volume) and of internal nodes.
+pub const LEAF_STATUSES: [&str; 6] = ["pending", "leased", "safe", "unsafe", "unresolved", "failed"];
+pub const ALL_STATUSES: [&str; 7] = ["pending", "leased", "safe", "unsafe", "unresolved", "failed", "split"];
+
+/// Milliseconds since the Unix epoch.
+pub fn now_ms() -> i64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_millis() as i64)
+        .unwrap_or(0)
+}
+
+/// What the server needs to know of a campaign's spec to cut and hand out cells.
+#[derive(Debug, Clone)]
+pub struct CampaignInfo {
+    pub id: String,
+    pub spec_hash: String,
+    pub states: Vec<String>,
+    /// Envelope interval of every state, in state order.
+    pub envelope: Vec<[f64; 2]>,
+    /// State index of each split dimension.
+    pub split: Vec<usize>,
+    /// Envelope restricted to the split dimensions.
+    pub split_envelope: Vec<[f64; 2]>,
+    pub max_depth: u32,
+    pub refine_unsafe: bool,
+}
+
+impl CampaignInfo {
+    /// Build from a validated spec.
+    pub fn from_spec(id: &str, spec_hash: &str, spec: &tessera_worker::engine::spec::Spec) -> CampaignInfo {
+        let envelope: Vec<[f64; 2]> =
+            spec.states.iter().map(|s| spec.doc.envelope.get(s).copied().unwrap_or([0.0, 0.0])).collect();
+        let split_envelope = spec.split.iter().map(|&k| envelope[k]).collect();
+        CampaignInfo {
+            id: id.to_string(),
+            spec_hash: spec_hash.to_string(),
+            states: spec.states.clone(),
+            envelope,
+            split: spec.split.clone(),
+            split_envelope,
+            max_depth: spec.max_depth,
+            refine_unsafe: spec.refine_unsafe,
+        }
+    }
+
+    /// The full box over all states (`{"name": [lo, hi]}`) of a cell given over the
+    /// split dimensions; non-split states keep their envelope interval.
+    pub fn full_box(&self, cell: &[[f64; 2]]) -> serde_json::Map<String, serde_json::Value> {
+        let mut full = self.envelope.clone();
+        for (j, &k) in self.split.iter().enumerate() {
+            if let Some(iv) = cell.get(j) {
+                full[k] = *iv;
+            }
+        }
+        self.states.iter().zip(full).map(|(n, [lo, hi])| (n.clone(), serde_json::json!([lo, hi]))).collect()
+    }
+}
+
+pub struct Store {
+    pub pool: SqlitePool,
+    write: tokio::sync::Mutex<()>,
+    infos: RwLock<HashMap<String, Arc<CampaignInfo>>>,
+    tokens: RwLock<HashMap<String, Role>>,
+}
+
+/// A write transaction; holding it holds the store's write lock.
+pub struct WriteTx<'a> {
+    pub tx: Transaction<'static, Sqlite>,
+    _guard: tokio::sync::MutexGuard<'a, ()>,
+}
+
+impl WriteTx<'_> {
+    pub async fn commit(self) -> ApiResult<()> {
+        self.tx.commit().await?;
+        Ok(())
+    }
+}
+
+impl Store {
+    /// Open (creating when missing) the database at `path` in WAL mode with foreign
+    /// keys on and a busy timeout, and apply the migrations.
+    pub async fn open(path: &Path) -> anyhow::Result<Arc<Store>> {
+        let opts = SqliteConnectOptions::new()
+            .filename(path)
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Normal)
+            .foreign_keys(true)
+            .busy_timeout(Duration::from_secs(10))
+            .statement_cache_capacity(400);
+        let pool = SqlitePoolOptions::new().max_connections(8).connect_with(opts).await?;
+        sqlx::migrate!("../migrations").run(&pool).await?;
+        Ok(Arc::new(Store {
+            pool,
+            write: tokio::sync::Mutex::new(()),
+            infos: RwLock::new(HashMap::new()),
+            tokens: RwLock::new(HashMap::new()),
+        }))
+    }
+
+    /// Close the pool (waits for connections to be returned).
+    pub async fn close(&self) {
+        self.pool.close().await;
+    }
+
+    /// Start a write transaction (waits for the write lock).
+    pub async fn write(&self) -> ApiResult<WriteTx<'_>> {
+        let guard = self.write.lock().await;
+        let tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+        Ok(WriteTx { tx, _guard: guard })
+    }
+
+    // ---------------------------------------------------------------- tokens
+
+    /// Create a token with `role`; returns the secret (stored only as its hash).
+    pub async fn create_token(&self, role: Role, label: &str) -> ApiResult<String> {
+        let secret = auth::new_token();
+        self.register_token(&secret, role, label).await?;
+        Ok(secret)
+    }
+
+    /// Register a given secret with `role` (idempotent for the same secret).
+    pub async fn register_token(&self, secret: &str, role: Role, label: &str) -> ApiResult<()> {
+        let mut w = self.write().await?;
+        sqlx::query(
+            "INSERT INTO tokens (id, token_hash, role, label, created_at) VALUES (?, ?, ?, ?, ?)
+             ON CONFLICT (token_hash) DO UPDATE SET role = excluded.role",
+        )
+        .bind(uuid::Uuid::new_v4().to_string())
+        .bind(auth::hash_token(secret))
+        .bind(role.as_str())
+        .bind(label)
+        .bind(now_ms())
+        .execute(&mut *w.tx)
+        .await?;
+        w.commit().await?;
+        if let Ok(mut m) = self.tokens.write() {
+            m.clear();
+        }
+        Ok(())
+    }
+
+    /// The role of a presented token, if it is known. The stored hash is compared
+    /// with the presented one in constant time.
+    pub async fn role_of(&self, secret: &str) -> ApiResult<Option<Role>> {
+        let h = auth::hash_token(secret);
+        if let Some(r) = self.tokens.read().ok().and_then(|m| m.get(&h).copied()) {
+            return Ok(Some(r));
+        }
+        let row = sqlx::query("SELECT token_hash, role FROM tokens WHERE token_hash = ?")
+            .bind(&h)
+            .fetch_optional(&self.pool)
+            .await?;
+        let Some(row) = row else { return Ok(None) };
+        let stored: String = row.try_get(0)?;
+        let role: String = row.try_get(1)?;
+        if !auth::constant_time_eq(stored.as_bytes(), h.as_bytes()) {
+            return Ok(None);
+        }
+        let role = Role::parse(&role);
+        if let (Some(r), Ok(mut m)) = (role, self.tokens.write()) {
+            m.insert(h, r);
+        }
+        Ok(role)
+    }
+
+    // ---------------------------------------------------------------- models
+
+    /// Store a model blob under its SHA-256 (idempotent). Returns the hash.
+    pub async fn put_model(&self, data: &[u8], inputs: Option<usize>, outputs: Option<usize>) -> ApiResult<String> {
+        use sha2::Digest;
+        let sha = hex::encode(sha2::Sha256::digest(data));
+        let mut w = self.write().await?;
+        sqlx::query(
+            "INSERT INTO models (sha256, size, inputs, outputs, data, created_at) VALUES (?, ?, ?, ?, ?, ?)
+             ON CONFLICT (sha256) DO NOTHING",
+        )
+        .bind(&sha)
+        .bind(data.len() as i64)
+        .bind(inputs.map(|v| v as i64))
+        .bind(outputs.map(|v| v as i64))
+        .bind(data)
+        .bind(now_ms())
+        .execute(&mut *w.tx)
+        .await?;
+        w.commit().await?;
+        Ok(sha)
+    }
+
+    pub async fn get_model(&self, sha: &str) -> ApiResult<Option<Vec<u8>>> {
+        let row = sqlx::query("SELECT data FROM models WHERE sha256 = ?").bind(sha).fetch_optional(&self.pool).await?;
+        Ok(match row {
+            Some(r) => Some(r.try_get(0)?),
+            None => None,
+        })
+    }
+
+    /// `(inputs, outputs)` of a stored model, `None` when no such model.
+    pub async fn model_shape(&self, sha: &str) -> ApiResult<Option<(Option<i64>, Option<i64>)>> {
+        let row = sqlx::query("SELECT inputs, outputs FROM models WHERE sha256 = ?")
+            .bind(sha)
+            .fetch_optional(&self.pool)
+            .await?;
+        Ok(match row {
+            Some(r) => Some((r.try_get(0)?, r.try_get(1)?)),
+            None => None,
+        })
+    }
+
+    // ---------------------------------------------------------------- campaigns
+
+    /// The cut-and-lease view of a campaign's spec (cached).
+    pub async fn info(&self, id: &str) -> ApiResult<Option<Arc<CampaignInfo>>> {
+        if let Some(i) = self.infos.read().ok().and_then(|m| m.get(id).cloned()) {
+            return Ok(Some(i));
+        }
+        let row = sqlx::query("SELECT spec_json, spec_hash FROM campaigns WHERE id = ?")
+            .bind(id)
+            .fetch_optional(&self.pool)
+            .await?;
+        let Some(row) = row else { return Ok(None) };
+        let json: String = row.try_get(0)?;
+        let hash: String = row.try_get(1)?;
+        let spec = tessera_worker::engine::spec::parse_spec(&json)
+            .map_err(|e| ApiError::internal(format!("stored spec of campaign {id} no longer validates: {e:?}")))?;
+        let info = Arc::new(CampaignInfo::from_spec(id, &hash, &spec));
+        if let Ok(mut m) = self.infos.write() {
+            m.insert(id.to_string(), info.clone());
+        }
+        Ok(Some(info))
+    }
+
+    /// Counters of a campaign: status → (cells, volume).
+    pub async fn counters(&self, id: &str) -> ApiResult<HashMap<String, (i64, i64)>> {
+        let rows = sqlx::query("SELECT status, cells, volume FROM campaign_counters WHERE campaign_id = ?")
+            .bind(id)
+            .fetch_all(&self.pool)
+            .await?;
+        let mut m = HashMap::new();
+        for r in rows {
+            m.insert(r.try_get::<String, _>(0)?, (r.try_get(1)?, r.try_get(2)?));
+        }
+        Ok(m)
+    }
+}
+
+/// Accumulated counter changes of one transaction: (campaign, status) → (cells, volume).
+#[derive(Default, Debug)]
+pub struct Deltas(pub HashMap<(String, &'static str), (i64, i64)>);
+
+impl Deltas {
+    pub fn add(&mut self, campaign: &str, status: &'static str, cells: i64, volume: i64) {
+        let e = self.0.entry((campaign.to_string(), status)).or_insert((0, 0));
+        e.0 += cells;
+        e.1 += volume;
+    }
+    /// Move one cell of `volume` from status `from` to `to`.
+    pub fn moved(&mut self, campaign: &str, from: &'static str, to: &'static str, volume: i64) {
+        if from != to {
+            self.add(campaign, from, -1, -volume);
+            self.add(campaign, to, 1, volume);
+        }
+    }
+
+    /// Apply the changes, then mark campaigns with no pending or leased cell left as
+    /// `done`. Returns the campaigns that became done.
+    pub async fn apply(self, tx: &mut Transaction<'static, Sqlite>) -> ApiResult<Vec<String>> {
+        let mut touched: Vec<String> = Vec::new();
+        for ((c, s), (n, v)) in &self.0 {
+            if *n == 0 && *v == 0 {
+                continue;
+            }
+            sqlx::query("UPDATE campaign_counters SET cells = cells + ?, volume = volume + ? WHERE campaign_id = ? AND status = ?")
+                .bind(n)
+                .bind(v)
+                .bind(c)
+                .bind(*s)
+                .execute(&mut **tx)
+                .await?;
+            if !touched.contains(c) {
+                touched.push(c.clone());
+            }
+        }
+        let mut done = Vec::new();
+        let now = now_ms();
+        for c in touched {
+            let open: i64 = sqlx::query_scalar(
+                "SELECT COALESCE(SUM(cells), 0) FROM campaign_counters WHERE campaign_id = ? AND status IN ('pending', 'leased')",
+            )
+            .bind(&c)
+            .fetch_one(&mut **tx)
+            .await?;
+            if open == 0 {
+                let r = sqlx::query(
+                    "UPDATE campaigns SET state = 'done', finished_at = ?, updated_at = ? WHERE id = ? AND state IN ('running', 'paused')",
+                )
+                .bind(now)
+                .bind(now)
+                .bind(&c)
+                .execute(&mut **tx)
+                .await?;
+                if r.rows_affected() > 0 {
+                    done.push(c);
+                }
+            }
+        }
+        Ok(done)
+    }
+}
