@@ -396,6 +396,19 @@ def normalize(cls, obs):
     return (obs - np.array(cls.offset)) / np.array(cls.scale)
 
 
+SCENARIOS = {"lander": Lander, "rover": Rover}
+
+
+def labelled_sample(cls, rng, n, prev_command):
+    """Normalized network inputs and the expert's labels for the network used after
+    `prev_command` (the lander's single network ignores it)."""
+    if cls is Lander:
+        obs = cls.sample_obs(rng, n)
+        return normalize(cls, obs), cls.expert(obs)
+    obs = cls.observe(cls.sample_states(rng, n))
+    return normalize(cls, obs), cls.expert(obs, np.full(n, prev_command))
+
+
 def write_spec(cls):
     path = os.path.join(HERE, cls.name, "spec.json")
     text = json.dumps(cls.spec(), indent=2)
