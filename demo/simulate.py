@@ -11,7 +11,8 @@ index, as numpy's argmax); the inputs of c_k hold on [kT, (k+1)T]. The plant is 
 with classical RK4 on `--steps` fine steps per period; disturbances are constant on each
 fine step, drawn uniformly in their range (`--mode random`) or at a random end of it
 (`--mode extreme`); noise likewise at each sample. Unsafe is checked at every fine step
-(an approximation of the continuous-time check), including t = 0.
+(an approximation of the continuous-time check), including t = 0. When a spec lists several
+initial commands, trajectory i starts from initial command i modulo their number.
 
 Usage: python3 demo/simulate.py demo/lander/spec.json [--n 2000] [--seed 1] [--mode random]
 """

@@ -195,6 +195,14 @@ class Lander:
         levels = np.array([a for _, a in cls.commands])
         return np.argmin(np.abs(want[:, None] - levels[None, :]), axis=1)
 
+    @staticmethod
+    def observe(x):
+        return np.asarray(x, dtype=np.float64)[:, :2].copy()
+
+    @classmethod
+    def sample_states(cls, rng, n):
+        return cls.sample_obs(rng, n)
+
     @classmethod
     def sample_obs(cls, rng, n):
         h = rng.uniform(-0.2, 12.5, n)

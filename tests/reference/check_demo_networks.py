@@ -15,6 +15,10 @@ For every spec demo/*/spec.json and every network it references:
   * the ONNX network agrees with the expert rule of demo/train.py (its training labels)
     on at least 90 % of 1000 samples drawn as in training: this ties the committed file
     to the trained network (a garbled export would fall to chance level).
+Per spec, also: the committed spec equals the one demo/train.py generates (no stale
+file), and its observation expressions, evaluated by demo/simulate.py's interpreter of the
+spec language, equal the features the networks were trained on (`observe` in train.py)
+on 1000 sampled states, to 1e-12 relative.
 Prints, as JSON on stdout, each spec's network references with the input and output
 counts read from the graph's declared input/output dims, for the Rust side to check with
 `Spec::check_networks`. Exits non-zero, loudly, on any failure or missing package.
@@ -84,6 +88,9 @@ def main():
     root = os.path.abspath(sys.argv[1])
     sys.path.insert(0, os.path.join(root, "demo"))
     import train  # defines `forward`; trains nothing on import
+    import simulate  # the spec-language interpreter of the demo simulator
+
+    rng_feat = np.random.default_rng(11)
 
     specs = sorted(glob.glob(os.path.join(root, "demo", "*", "spec.json")))
     if not specs:
@@ -94,6 +101,19 @@ def main():
         with open(spec_path) as f:
             spec = json.load(f)
         base = os.path.dirname(spec_path)
+        cls = train.SCENARIOS.get(spec.get("name"))
+        if cls is None:
+            fail(f"{spec_path}: no scenario '{spec.get('name')}' in demo/train.py")
+        if spec != cls.spec():
+            fail(f"{spec_path} differs from what demo/train.py generates: rerun python3 demo/train.py")
+        states = cls.sample_states(rng_feat, SAMPLES)
+        env = {st["name"]: states[:, i] for i, st in enumerate(spec["states"])}
+        feats = np.stack([np.broadcast_to(simulate.compile_expr(o["expr"], list(env))(env), (SAMPLES,))
+                          for o in spec["controller"]["observations"]], axis=1)
+        want = cls.observe(states)
+        if not np.allclose(feats, want, rtol=1e-12, atol=1e-12):
+            fail(f"{spec_path}: the spec's observations differ from the training features "
+                 f"by up to {np.max(np.abs(feats - want)):.3e}")
         entry = {"spec": os.path.relpath(spec_path, root), "networks": []}
         for ref in spec["controller"]["networks"]:
             path = os.path.join(base, ref)

@@ -80,3 +80,30 @@ fn demo_specs_validate_and_reference_existing_files() {
     let rover = parse_spec(&std::fs::read_to_string(repo_root().join(DEMO_SPECS[1])).unwrap()).unwrap();
     assert_eq!(rover.network_of_command, vec![0, 1, 2, 3, 4], "the rover uses a bank chosen by the previous command");
 }
+
+/// Runs `demo/simulate.py` (fixed seed) and returns the printed (safe, unsafe) fractions.
+fn simulated_fractions(rel: &str) -> (f64, f64) {
+    let root = repo_root();
+    let out = Command::new("python3")
+        .arg(root.join("demo/simulate.py"))
+        .arg(root.join(rel))
+        .args(["--n", "600", "--seed", "5"])
+        .output()
+        .expect("cannot run python3 demo/simulate.py");
+    let text = String::from_utf8_lossy(&out.stdout).into_owned();
+    assert!(out.status.success(), "simulate.py {rel} failed:\n{text}{}", String::from_utf8_lossy(&out.stderr));
+    let line = text.lines().find(|l| l.trim_start().starts_with("safe ")).expect("a 'safe … unsafe …' line");
+    let nums: Vec<f64> = line.split_whitespace().filter_map(|w| w.parse().ok()).collect();
+    assert_eq!(nums.len(), 2, "{line}");
+    (nums[0], nums[1])
+}
+
+/// The demo is only a demo if a campaign has something to find: sampled closed-loop
+/// trajectories of each scenario include both safe and unsafe ones.
+#[test]
+fn demo_scenarios_have_safe_and_unsafe_trajectories() {
+    for rel in DEMO_SPECS {
+        let (safe, unsafe_) = simulated_fractions(rel);
+        assert!(safe > 0.5 && unsafe_ > 0.0, "{rel}: safe {safe}, unsafe {unsafe_}");
+    }
+}
