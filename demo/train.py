@@ -1,0 +1,479 @@
+#!/usr/bin/env python3
+"""Train the demo controllers and write their specs and ONNX files.
+
+Two scenarios of our own (see demo/README.md):
+  lander  2 states, linear flight with a landing-gear contact, one network, 5 thrust levels
+  rover   4 states, unicycle kinematics past a pillar, a bank of 5 networks chosen by
+          the previous command, 5 steering commands
+
+For each scenario an expert rule of our own labels sampled observations; small ReLU
+networks are fitted to the labels with plain numpy backprop and Adam (fixed seeds), then
+exported to ONNX with DOUBLE (float64) tensors: Gemm (transB = 1) and Relu nodes only.
+The spec files are generated from the same constants, so the normalization and the
+command table the networks were trained with are the ones the spec states.
+
+Run:  python3 demo/train.py            (writes demo/lander/* and demo/rover/*)
+Importing this module trains nothing: `forward`, the experts and the constants are reusable
+(tests/reference/check_demo_networks.py imports `forward`).
+"""
+
+import os
+
+# One thread, so that floating-point reductions happen in one fixed order and a rerun
+# reproduces the committed files byte for byte. Must be set before numpy is imported.
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "NUMEXPR_NUM_THREADS"):
+    os.environ[_var] = "1"
+
+import json  # noqa: E402
+import re  # noqa: E402
+import sys  # noqa: E402
+import time  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+
+# ---------------------------------------------------------------------------
+# Network: forward pass, training, export
+# ---------------------------------------------------------------------------
+
+
+def forward(layers, x):
+    """Logits of a ReLU network. `layers` is a list of (W, b) with W of shape
+    (inputs, outputs): y = relu(... relu(x @ W0 + b0) ...) @ Wn + bn (no ReLU on the last
+    layer). `x` has shape (batch, inputs); float64 throughout."""
+    h = np.asarray(x, dtype=np.float64)
+    for i, (w, b) in enumerate(layers):
+        h = h @ w + b
+        if i + 1 < len(layers):
+            h = np.maximum(h, 0.0)
+    return h
+
+
+def init_layers(rng, sizes):
+    """He-initialised weights, zero biases."""
+    layers = []
+    for n_in, n_out in zip(sizes[:-1], sizes[1:]):
+        w = rng.standard_normal((n_in, n_out)) * np.sqrt(2.0 / n_in)
+        layers.append((w, np.zeros(n_out)))
+    return layers
+
+
+def train(layers, x, y, *, rng, epochs, batch=256, lr=3e-3, weight_decay=0.0):
+    """Minimise the softmax cross-entropy of `forward(layers, x)` against integer labels
+    `y` with Adam (beta1 0.9, beta2 0.999, eps 1e-8; common practice). Returns new layers."""
+    params = [p.copy() for wb in layers for p in wb]
+    m = [np.zeros_like(p) for p in params]
+    v = [np.zeros_like(p) for p in params]
+    b1, b2, eps = 0.9, 0.999, 1e-8
+    step = 0
+    n = len(x)
+    n_layers = len(layers)
+    for _ in range(epochs):
+        order = rng.permutation(n)
+        for s in range(0, n, batch):
+            idx = order[s : s + batch]
+            xb, yb = x[idx], y[idx]
+            # Forward, keeping activations.
+            acts = [xb]
+            h = xb
+            for i in range(n_layers):
+                h = h @ params[2 * i] + params[2 * i + 1]
+                if i + 1 < n_layers:
+                    h = np.maximum(h, 0.0)
+                acts.append(h)
+            z = h - h.max(axis=1, keepdims=True)
+            p = np.exp(z)
+            p /= p.sum(axis=1, keepdims=True)
+            p[np.arange(len(yb)), yb] -= 1.0
+            g = p / len(yb)
+            grads = [None] * len(params)
+            for i in reversed(range(n_layers)):
+                grads[2 * i] = acts[i].T @ g + weight_decay * params[2 * i]
+                grads[2 * i + 1] = g.sum(axis=0)
+                if i > 0:
+                    g = (g @ params[2 * i].T) * (acts[i] > 0.0)
+            step += 1
+            for k, gr in enumerate(grads):
+                m[k] = b1 * m[k] + (1 - b1) * gr
+                v[k] = b2 * v[k] + (1 - b2) * gr * gr
+                mh = m[k] / (1 - b1**step)
+                vh = v[k] / (1 - b2**step)
+                params[k] -= lr * mh / (np.sqrt(vh) + eps)
+    return [(params[2 * i], params[2 * i + 1]) for i in range(n_layers)]
+
+
+def accuracy(layers, x, y):
+    return float(np.mean(np.argmax(forward(layers, x), axis=1) == y))
+
+
+def export_onnx(layers, path, doc):
+    """Write the network as ONNX: input `obs` (batch, n_in) DOUBLE, Gemm(transB=1) and Relu
+    nodes, output `scores` (batch, n_out) DOUBLE. Weights are stored as (out, in)."""
+    import onnx
+    from onnx import TensorProto, helper, numpy_helper
+
+    n_in = layers[0][0].shape[0]
+    n_out = layers[-1][0].shape[1]
+    nodes, inits = [], []
+    cur = "obs"
+    for i, (w, b) in enumerate(layers):
+        wn, bn, out = f"W{i}", f"B{i}", f"gemm{i}"
+        inits.append(numpy_helper.from_array(np.ascontiguousarray(w.T, dtype=np.float64), wn))
+        inits.append(numpy_helper.from_array(np.asarray(b, dtype=np.float64), bn))
+        last = i + 1 == len(layers)
+        if last:
+            out = "scores"
+        nodes.append(helper.make_node("Gemm", [cur, wn, bn], [out], name=f"dense{i}", transB=1))
+        cur = out
+        if not last:
+            nodes.append(helper.make_node("Relu", [cur], [f"relu{i}"], name=f"relu{i}"))
+            cur = f"relu{i}"
+    graph = helper.make_graph(
+        nodes,
+        "controller",
+        [helper.make_tensor_value_info("obs", TensorProto.DOUBLE, ["batch", n_in])],
+        [helper.make_tensor_value_info("scores", TensorProto.DOUBLE, ["batch", n_out])],
+        initializer=inits,
+    )
+    model = helper.make_model(
+        graph,
+        producer_name="tessera-demo-train",
+        producer_version="1",
+        doc_string=doc,
+        opset_imports=[helper.make_opsetid("", 13)],
+    )
+    model.ir_version = 8
+    onnx.checker.check_model(model)
+    with open(path, "wb") as f:
+        f.write(model.SerializeToString())
+
+
+# ---------------------------------------------------------------------------
+# Scenario "lander"
+# ---------------------------------------------------------------------------
+
+# Standard acceleration of gravity, m/s^2: the conventional value fixed by the 3rd CGPM
+# (1901) and used in ISO 80000-3 (value from memory of that definition).
+G0 = 9.80665
+
+
+class Lander:
+    name = "lander"
+    period = 0.15  # s
+    horizon = 30  # periods: 4.5 s
+    # Thrust acceleration of each command, m/s^2 (net vertical acceleration = a - G0).
+    commands = [("cut", 4.0), ("low", 8.3), ("hold", 10.3), ("brake", 11.8), ("full", 13.0)]
+    gust = 0.3  # m/s^2, vertical gust bound
+    touchdown_limit = -1.0  # m/s: touching the pad faster than this is a hard landing
+    ceiling = 12.0  # m
+    # Landing gear (per unit mass), a contact model in the form of Hunt and Crossley:
+    # force = d * (K - LAM * v) while the gear is compressed by d = -h > 0, never pulling.
+    gear_k = 100.0  # 1/s^2
+    gear_lam = 280.0  # 1/(m s)
+    gear_travel = 0.15  # m: compressing further bottoms the gear out
+    noise_h = 0.05  # m
+    noise_v = 0.05  # m/s
+    offset = [6.0, -1.5]
+    scale = [4.0, 2.5]
+    hidden = [16, 16]
+    samples = 8000
+    epochs = 16
+    seed = 20261
+
+    @staticmethod
+    def v_ref(h):
+        """Desired vertical speed: faster descent when high, 0.3 m/s at the pad."""
+        return -np.minimum(2.5, 0.3 + 0.7 * np.maximum(h, 0.0))
+
+    @classmethod
+    def expert(cls, obs):
+        """Command index for observations [h, v]: the thrust level nearest to the thrust
+        that would bring v to v_ref(h) in 0.3 s."""
+        h, v = obs[:, 0], obs[:, 1]
+        want = G0 + (cls.v_ref(h) - v) / 0.3
+        levels = np.array([a for _, a in cls.commands])
+        return np.argmin(np.abs(want[:, None] - levels[None, :]), axis=1)
+
+    @staticmethod
+    def observe(x):
+        return np.asarray(x, dtype=np.float64)[:, :2].copy()
+
+    @classmethod
+    def sample_states(cls, rng, n):
+        return cls.sample_obs(rng, n)
+
+    @classmethod
+    def sample_obs(cls, rng, n):
+        h = rng.uniform(-0.2, 12.5, n)
+        v = rng.uniform(-5.0, 2.0, n)
+        return np.stack([h, v], axis=1)
+
+    @classmethod
+    def spec(cls):
+        return {
+            "version": 1,
+            "name": "lander",
+            "description": (
+                "A small drone descends vertically to a landing pad. States: altitude h above the pad (m) "
+                "and vertical speed v (m/s, positive up). Five thrust levels (thrust acceleration a, m/s^2); "
+                "gravity is the standard value g = 9.80665 m/s^2 (conventional standard gravity). "
+                "A vertical gust of at most 0.3 m/s^2 acts at any time. Below h = 0 the landing gear "
+                "is compressed: a contact force (-h) * (100 - 280 v) per unit mass, never pulling, stops "
+                "the drone; compressing the gear by 0.15 m bottoms it out. Unsafe: touching down faster "
+                "than 1 m/s, bottoming the gear out, or climbing to the 12 m ceiling. All values other "
+                "than g are our own choices for this demo."
+            ),
+            "states": [{"name": "h", "unit": "m"}, {"name": "v", "unit": "m/s"}],
+            "inputs": [{"name": "a", "unit": "m/s^2"}],
+            "disturbances": [{"name": "gust", "range": [-cls.gust, cls.gust], "unit": "m/s^2"}],
+            "dynamics": {
+                "h": "v",
+                "v": f"a - {G0} + gust + max(0, -h) * max(0, {cls.gear_k} - {cls.gear_lam} * v)",
+            },
+            "controller": {
+                "period": cls.period,
+                "latency_periods": 0,
+                "observations": [
+                    {"name": "altitude", "expr": "h", "noise": [-cls.noise_h, cls.noise_h]},
+                    {"name": "vertical_speed", "expr": "v", "noise": [-cls.noise_v, cls.noise_v]},
+                ],
+                "normalization": {"offset": cls.offset, "scale": cls.scale},
+                "networks": ["lander.onnx"],
+                "selection": {"mode": "single"},
+                "decision": "argmax",
+                "commands": [{"name": n, "set": {"a": a}} for n, a in cls.commands],
+                "initial_command": "hold",
+            },
+            "unsafe": [
+                {"all": ["h <= 0", f"v <= {cls.touchdown_limit}"]},
+                {"all": [f"h <= -{cls.gear_travel}"]},
+                {"all": [f"h >= {cls.ceiling}"]},
+            ],
+            "horizon_periods": cls.horizon,
+            "envelope": {"h": [1.0, 10.0], "v": [-4.0, 1.0]},
+            "refinement": {"max_depth": 10, "split": ["h", "v"], "refine_unsafe": False},
+        }
+
+
+# ---------------------------------------------------------------------------
+# Scenario "rover"
+# ---------------------------------------------------------------------------
+
+
+class Rover:
+    name = "rover"
+    period = 0.25  # s
+    horizon = 24  # periods: 6 s
+    half_width = 1.5  # m, aisle |py| < half_width
+    cx, cy, r = 4.0, 0.3, 0.5  # pillar centre and radius, m
+    # (name, turn rate rad/s, cruise speed m/s)
+    commands = [
+        ("hard_left", 0.7, 0.7),
+        ("left", 0.3, 0.9),
+        ("straight", 0.0, 1.0),
+        ("right", -0.3, 0.9),
+        ("hard_right", -0.7, 0.7),
+    ]
+    speed_gain = 0.8  # 1/s, speed loop toward the cruise speed
+    speed_dist = 0.05  # m/s^2, speed disturbance bound
+    noise = [0.05, 0.02, 0.03, 0.02, 0.05]
+    offset = [2.5, 0.0, 0.0, 0.0, 2.0]
+    scale = [2.0, 1.0, 1.0, 0.5, 2.5]
+    hidden = [32, 32]
+    samples = 30000
+    epochs = 30
+    seed = 20262
+
+    # Observation expressions over the states (spec language) and the same in numpy.
+    obs_names = ["pillar_distance", "pillar_bearing", "aisle_offset", "heading", "pillar_ahead"]
+
+    @classmethod
+    def obs_exprs(cls):
+        dx, dy = f"({cls.cx} - px)", f"({cls.cy} - py)"
+        xb = f"({dx} * cos(th) + {dy} * sin(th))"
+        yb = f"({dy} * cos(th) - {dx} * sin(th))"
+        return [
+            f"sqrt({dx}^2 + {dy}^2)",
+            # Folded to the front half-plane (|x_body|), so the angle never crosses the
+            # branch cut of atan2 while the robot is clear of the pillar.
+            f"atan2({yb}, abs({xb}))",
+            "py",
+            "th",
+            f"{cls.cx} - px",
+        ]
+
+    @classmethod
+    def observe(cls, x):
+        px, py, th = x[:, 0], x[:, 1], x[:, 2]
+        dx, dy = cls.cx - px, cls.cy - py
+        xb = dx * np.cos(th) + dy * np.sin(th)
+        yb = dy * np.cos(th) - dx * np.sin(th)
+        return np.stack([np.sqrt(dx**2 + dy**2), np.arctan2(yb, np.abs(xb)), py, th, dx], axis=1)
+
+    @classmethod
+    def expert(cls, obs, prev):
+        """Command index for observations and the previous command. Before the pillar,
+        aim for the middle of the gap on the robot's side of it (the wide right gap unless
+        the robot is well left of the pillar's centre); after it, back to the centre line.
+        Steer toward that lane with a heading limited to 0.5 rad; near the pillar, turn away
+        from it. Keep the previous command while it is within 0.2 rad/s of the wanted turn
+        rate (hysteresis, hence one network per previous command)."""
+        dist, bearing, py, th, ahead = (obs[:, i] for i in range(5))
+        rates = np.array([c[1] for c in cls.commands])
+        left_gap = 0.5 * (cls.cy + cls.r + cls.half_width)
+        right_gap = 0.5 * (cls.cy - cls.r - cls.half_width)
+        before = ahead > -0.3
+        y_ref = np.where(before, np.where(py > cls.cy + 0.15, left_gap, right_gap), 0.0)
+        th_ref = np.clip(0.9 * (y_ref - py), -0.5, 0.5)
+        want = 1.5 * (th_ref - th)
+        close = before & (dist < cls.r + 0.45) & (np.abs(bearing) < 1.0)
+        want = np.where(close, -np.sign(bearing) * 0.8, want)
+        nearest = np.argmin(np.abs(want[:, None] - rates[None, :]), axis=1)
+        keep = np.abs(rates[prev] - want) <= 0.2
+        return np.where(keep, prev, nearest)
+
+    @classmethod
+    def sample_states(cls, rng, n):
+        px = rng.uniform(1.0, 10.0, n)
+        py = rng.uniform(-1.6, 1.6, n)
+        th = rng.uniform(-1.2, 1.2, n)
+        v = rng.uniform(0.5, 1.2, n)
+        return np.stack([px, py, th, v], axis=1)
+
+    @classmethod
+    def spec(cls):
+        return {
+            "version": 1,
+            "name": "rover",
+            "description": (
+                "A wheeled robot drives along a 3 m wide aisle past a round pillar (centre (4, 0.3) m, "
+                "radius 0.5 m). Unicycle kinematics: position px, py (m), heading th (rad), speed v (m/s). "
+                "Five steering commands set a turn rate and a cruise speed; the speed follows the cruise "
+                "speed with gain 0.8 1/s plus a disturbance of at most 0.05 m/s^2. The network that decides "
+                "is the one of the previous command (a bank of five). Observations: distance and bearing "
+                "(relative to the heading, folded to the front) to the pillar, offset in the aisle, heading, "
+                "and the distance still to go to the pillar, each with noise. Unsafe: inside the pillar's "
+                "disc or touching an aisle wall. All values are our own choices for this demo."
+            ),
+            "states": [
+                {"name": "px", "unit": "m"},
+                {"name": "py", "unit": "m"},
+                {"name": "th", "unit": "rad"},
+                {"name": "v", "unit": "m/s"},
+            ],
+            "inputs": [{"name": "turn", "unit": "rad/s"}, {"name": "cruise", "unit": "m/s"}],
+            "disturbances": [{"name": "w", "range": [-cls.speed_dist, cls.speed_dist], "unit": "m/s^2"}],
+            "dynamics": {
+                "px": "v * cos(th)",
+                "py": "v * sin(th)",
+                "th": "turn",
+                "v": f"{cls.speed_gain} * (cruise - v) + w",
+            },
+            "controller": {
+                "period": cls.period,
+                "latency_periods": 0,
+                "observations": [
+                    {"name": n, "expr": e, "noise": [-z, z]}
+                    for n, e, z in zip(cls.obs_names, cls.obs_exprs(), cls.noise)
+                ],
+                "normalization": {"offset": cls.offset, "scale": cls.scale},
+                "networks": [f"net_{n}.onnx" for n, _, _ in cls.commands],
+                "selection": {"mode": "previous_command", "network_of_command": list(range(len(cls.commands)))},
+                "decision": "argmax",
+                "commands": [{"name": n, "set": {"turn": t, "cruise": s}} for n, t, s in cls.commands],
+                "initial_command": "straight",
+            },
+            "unsafe": [
+                {"all": [f"(px - {cls.cx})^2 + (py - {cls.cy})^2 <= {cls.r}^2"]},
+                {"all": [f"py >= {cls.half_width}"]},
+                {"all": [f"py <= -{cls.half_width}"]},
+            ],
+            "horizon_periods": cls.horizon,
+            "envelope": {"px": [2.0, 3.0], "py": [-1.2, 1.2], "th": [-0.4, 0.4], "v": [0.95, 1.05]},
+            "refinement": {"max_depth": 12, "split": ["py", "th", "px"], "refine_unsafe": False},
+        }
+
+
+# ---------------------------------------------------------------------------
+# Driver
+# ---------------------------------------------------------------------------
+
+
+def normalize(cls, obs):
+    return (obs - np.array(cls.offset)) / np.array(cls.scale)
+
+
+SCENARIOS = {"lander": Lander, "rover": Rover}
+
+
+def labelled_sample(cls, rng, n, prev_command):
+    """Normalized network inputs and the expert's labels for the network used after
+    `prev_command` (the lander's single network ignores it)."""
+    if cls is Lander:
+        obs = cls.sample_obs(rng, n)
+        return normalize(cls, obs), cls.expert(obs)
+    obs = cls.observe(cls.sample_states(rng, n))
+    return normalize(cls, obs), cls.expert(obs, np.full(n, prev_command))
+
+
+def write_spec(cls):
+    path = os.path.join(HERE, cls.name, "spec.json")
+    text = json.dumps(cls.spec(), indent=2)
+    # Keep short lists of numbers and one-line objects on one line, for readability.
+    text = re.sub(r"\[\s+([-0-9.e, \n]+?)\s+\]", lambda m: "[" + ", ".join(m.group(1).split(",\n")).replace(" ", "").replace(",", ", ") + "]", text)
+    text = re.sub(r"\{\s+(\"[^{}\[\]]{0,60}?)\s+\}", lambda m: "{" + " ".join(m.group(1).split()) + "}", text)
+    with open(path, "w") as f:
+        f.write(text + "\n")
+    return path
+
+
+def run_lander():
+    cls = Lander
+    rng = np.random.default_rng(cls.seed)
+    obs_tr, obs_te = cls.sample_obs(rng, cls.samples), cls.sample_obs(rng, 20000)
+    y_tr, y_te = cls.expert(obs_tr), cls.expert(obs_te)
+    sizes = [2] + cls.hidden + [len(cls.commands)]
+    layers = train(init_layers(rng, sizes), normalize(cls, obs_tr), y_tr, rng=rng, epochs=cls.epochs)
+    acc_tr = accuracy(layers, normalize(cls, obs_tr), y_tr)
+    acc_te = accuracy(layers, normalize(cls, obs_te), y_te)
+    os.makedirs(os.path.join(HERE, "lander"), exist_ok=True)
+    export_onnx(layers, os.path.join(HERE, "lander", "lander.onnx"), "demo lander controller: obs [h, v] normalized")
+    write_spec(cls)
+    print(f"lander: network {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
+
+
+def run_rover():
+    cls = Rover
+    rng = np.random.default_rng(cls.seed)
+    os.makedirs(os.path.join(HERE, "rover"), exist_ok=True)
+    sizes = [5] + cls.hidden + [len(cls.commands)]
+    for c, (cname, _, _) in enumerate(cls.commands):
+        x_tr, x_te = cls.sample_states(rng, cls.samples), cls.sample_states(rng, 20000)
+        o_tr, o_te = cls.observe(x_tr), cls.observe(x_te)
+        y_tr = cls.expert(o_tr, np.full(len(o_tr), c))
+        y_te = cls.expert(o_te, np.full(len(o_te), c))
+        layers = train(init_layers(rng, sizes), normalize(cls, o_tr), y_tr, rng=rng, epochs=cls.epochs)
+        acc_tr = accuracy(layers, normalize(cls, o_tr), y_tr)
+        acc_te = accuracy(layers, normalize(cls, o_te), y_te)
+        export_onnx(
+            layers,
+            os.path.join(HERE, "rover", f"net_{cname}.onnx"),
+            f"demo rover controller used after command '{cname}': obs {cls.obs_names} normalized",
+        )
+        print(f"rover: network after '{cname}' {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
+    write_spec(cls)
+
+
+def main():
+    t0 = time.perf_counter()
+    which = sys.argv[1:] or ["lander", "rover"]
+    if "lander" in which:
+        run_lander()
+    if "rover" in which:
+        run_rover()
+    print(f"training took {time.perf_counter() - t0:.1f} s")
+
+
+if __name__ == "__main__":
+    main()
