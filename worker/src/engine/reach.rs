@@ -285,9 +285,86 @@ fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: 
                     *x = x.hull(y);
                 }
             }
-            Some((c, boxed_with_fresh_symbols(set, &h)))
+            Some((c, restrict_to_box(set, &h)?))
         })
         .collect()
+}
+
+/// A sound enclosure of `set ∩ b`, or `None` when they provably do not meet. The
+/// zonotope is contracted first (noise symbols narrowed where a component must stay
+/// in `b`), which keeps its dependencies; when the contracted set's box is still much
+/// larger than `b`, the box `b` itself (on fresh symbols) is the better enclosure.
+fn restrict_to_box(set: &StateSet, b: &[Interval]) -> Option<StateSet> {
+    let contracted = contract_to_box(set, b)?;
+    let cbox = contracted.to_box();
+    let ratio: f64 = cbox
+        .iter()
+        .zip(b)
+        .map(|(c, h)| if h.width() > 0.0 { (c.width() / h.width()).max(1.0) } else { 1.0 })
+        .product();
+    if ratio <= 2.0 {
+        Some(contracted)
+    } else {
+        Some(boxed_with_fresh_symbols(set, b))
+    }
+}
+
+/// Narrow noise symbols so that the set keeps only points whose components may lie in
+/// `b`: for component i = c + g·ε_k + rest, with |rest| ≤ ρ, the constraint
+/// a ≤ x_i ≤ b forces ε_k ∈ [(a − c − ρ)/g, (b − c + ρ)/g] ∩ [−1, 1]; the symbol is
+/// then re-parametrised as ε_k = m + r·ε′ in every component (rounding into the error
+/// radii). Only points outside `b` are removed, so the result encloses `set ∩ b`.
+fn contract_to_box(set: &StateSet, b: &[Interval]) -> Option<StateSet> {
+    let mut comps: Vec<Affine> = set.components().to_vec();
+    for _round in 0..2 {
+        for i in 0..comps.len() {
+            let x = &comps[i];
+            if x.is_undefined() || x.range().subset_of(&b[i]) {
+                continue;
+            }
+            let Some(&(k, g)) = x.terms().iter().max_by(|p, q| p.1.abs().partial_cmp(&q.1.abs()).unwrap_or(std::cmp::Ordering::Equal)) else {
+                if x.range().intersect(&b[i]).is_none() {
+                    return None;
+                }
+                continue;
+            };
+            // ρ: everything but the chosen term, rounded up.
+            let rho = x.terms().iter().filter(|t| t.0 != k).fold(Interval::point(x.err()), |acc, t| acc + Interval::point(t.1.abs()));
+            let rho = rho.hi();
+            let c = Interval::point(x.center());
+            let lo = Interval::point(b[i].lo()) - c - Interval::point(rho);
+            let hi = Interval::point(b[i].hi()) - c + Interval::point(rho);
+            let gi = Interval::point(g);
+            let (e1, e2) = ((lo / gi), (hi / gi));
+            let range = e1.hull(&e2);
+            let Some(eps) = range.intersect(&Interval::new(-1.0, 1.0)) else {
+                return None; // no point of the set has component i in b
+            };
+            if eps.width() > 1.9 {
+                continue; // not worth a re-parametrisation
+            }
+            let m = Interval::point(eps.mid());
+            let r = Interval::point(eps.rad());
+            comps = comps.iter().map(|a| substitute(a, k, m, r)).collect();
+        }
+    }
+    Some(StateSet::from_forms(comps, set.num_symbols(), set.num_initial()))
+}
+
+/// `a` with ε_k replaced by m + r·ε_k (m, r exact doubles standing for the interval
+/// [m − r, m + r] ⊆ [−1, 1] the symbol is known to lie in).
+fn substitute(a: &Affine, k: usize, m: Interval, r: Interval) -> Affine {
+    let g = a.coeff(k);
+    if g == 0.0 || a.is_undefined() {
+        return a.clone();
+    }
+    let gi = Interval::point(g);
+    let c = Interval::point(a.center()) + gi * m;
+    let gk = gi * r;
+    let mut err = Interval::point(a.err()) + Interval::point(c.rad()) + Interval::point(gk.rad());
+    let terms: Vec<(usize, f64)> = a.terms().iter().map(|&(s, v)| if s == k { (s, gk.mid()) } else { (s, v) }).collect();
+    err = err + Interval::ZERO; // keep the sum rounded up
+    Affine::from_parts(c.mid(), &terms, err.hi())
 }
 
 /// The box `b` as a set in the symbol space of `like`, on fresh symbols (the initial
@@ -374,17 +451,34 @@ fn check_tube(
     None
 }
 
-/// Join branches with the same previous command into one set each.
+/// Join branches with the same previous command into one set each. The zonotope join
+/// keeps dependencies but over-approximates the union by about the sum of the sets'
+/// widths when they share few symbols; when its box is clearly wider than the box hull
+/// of the union, the box hull (on fresh symbols) is taken instead. Both are sound.
 fn join_by_command(branches: Vec<Branch>, max_gens: usize) -> Vec<Branch> {
-    let mut out: Vec<Branch> = Vec::new();
+    let mut groups: Vec<Vec<Branch>> = Vec::new();
     for b in branches {
-        match out.iter_mut().find(|o| o.prev == b.prev) {
-            Some(o) => {
-                o.set = o.set.join(&b.set);
-                o.set.reduce(max_gens);
-            }
-            None => out.push(b),
+        match groups.iter_mut().find(|g| g[0].prev == b.prev) {
+            Some(g) => g.push(b),
+            None => groups.push(vec![b]),
         }
     }
-    out
+    groups
+        .into_iter()
+        .map(|mut g| {
+            if g.len() == 1 {
+                return g.pop().unwrap();
+            }
+            let hull = g.iter().map(|b| b.set.to_box()).reduce(|a, b| a.iter().zip(&b).map(|(x, y)| x.hull(y)).collect()).unwrap();
+            let mut joined = g[0].set.clone();
+            for b in &g[1..] {
+                joined = joined.join(&b.set);
+                joined.reduce(max_gens);
+            }
+            let jbox = joined.to_box();
+            let too_wide = jbox.iter().zip(&hull).any(|(j, h)| j.width() > 1.1 * h.width() + 1e-12);
+            let set = if too_wide { boxed_with_fresh_symbols(&g[0].set, &hull) } else { joined };
+            Branch { set, prev: g[0].prev, root: g[0].root }
+        })
+        .collect()
 }
