@@ -110,12 +110,29 @@ pub fn output_bounds(net: &Network, input: &[Interval], method: BoundsMethod) ->
 /// The interval image of one layer (outward rounded, so it encloses the real image).
 fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
     match layer {
-        Layer::Dense { w, b } => w
-            .rows()
-            .into_iter()
-            .zip(b.iter())
-            .map(|(row, &bi)| row.iter().zip(a).fold(Interval::point(bi), |s, (&wij, &aj)| s + aj.scale(wij)))
-            .collect(),
+        Layer::Dense { w, b } => {
+            if a.iter().any(|x| x.is_undefined()) {
+                return vec![Interval::UNDEFINED; b.len()];
+            }
+            w.rows()
+                .into_iter()
+                .zip(b.iter())
+                .map(|(row, &bi)| {
+                    // Σ w_ij·[a_j] + b_i: each product end and each sum rounded outward.
+                    let (mut lo, mut hi) = (bi, bi);
+                    for (&wij, aj) in row.iter().zip(a) {
+                        if wij > 0.0 {
+                            lo = add_down(lo, mul_down(wij, aj.lo()));
+                            hi = add_up(hi, mul_up(wij, aj.hi()));
+                        } else if wij < 0.0 {
+                            lo = add_down(lo, mul_down(wij, aj.hi()));
+                            hi = add_up(hi, mul_up(wij, aj.lo()));
+                        }
+                    }
+                    Interval::new(lo, hi)
+                })
+                .collect()
+        }
         Layer::Relu => a.iter().map(|x| x.max(Interval::ZERO)).collect(),
         Layer::Sigmoid => a
             .iter()
@@ -172,25 +189,44 @@ fn gamma(n: usize) -> f64 {
     (nu / (Interval::ONE - nu)).hi()
 }
 
-/// An upper bound on `Σ_j a_j·x_j` for non-negative `a`, `x`: the computed sum is
-/// within `γ_n·exact + n·η` of the exact one, so `exact ≤ (fl + n·η)/(1 − γ_n)`, and
-/// `1/(1 − γ) ≤ 1 + 2γ` for `γ ≤ 1/2`; each step below rounds up.
-fn nonneg_dot_upper(a: ArrayView1<f64>, x: &[f64]) -> f64 {
+/// An upper bound on `Σ_j |a_j|·x_j` for `x ≥ 0`, given `g ≥ γ_n`, `n = x.len()`:
+/// the computed sum of non-negative terms is within `γ_n·exact + n·η` of the exact
+/// one, so `exact ≤ (fl + n·η)/(1 − γ_n)`, and `1/(1 − γ) ≤ 1 + 2γ` for `γ ≤ 1/2`;
+/// each step below rounds up.
+fn abs_dot_upper(a: ArrayView1<f64>, x: &[f64], g: f64) -> f64 {
     let n = x.len();
-    let s: f64 = a.iter().zip(x).map(|(&ai, &xi)| ai.abs() * xi).sum();
-    let g = gamma(n);
     assert!(g <= 0.5, "dimension too large for the error bound");
+    let s: f64 = a.iter().zip(x).map(|(&ai, &xi)| ai.abs() * xi).sum();
     let s = (s + n as f64 * ETA).next_up();
     (s * (1.0 + 2.0 * g).next_up()).next_up()
 }
 
-/// A lower end that is −∞ when the interval is undefined (NaN never proves anything).
-fn lower(i: Interval) -> f64 {
-    if i.is_undefined() {
+// Directed rounding of one operation on exact f64 operands. Round-to-nearest is within
+// half an ulp of the exact result, so one step of `next_down`/`next_up` gives a lower
+// / upper bound (also at an overflow to ±∞ and in the subnormal range). A NaN result
+// (∞ − ∞, 0·∞) becomes the vacuous bound.
+
+/// Lower bound of `a·b`; `0·x` is exactly 0 even for infinite `x` (bounds stand for reals).
+fn mul_down(a: f64, b: f64) -> f64 {
+    if a == 0.0 || b == 0.0 {
+        return 0.0;
+    }
+    let p = a * b;
+    if p.is_nan() {
         f64::NEG_INFINITY
     } else {
-        i.lo()
+        p.next_down()
     }
+}
+
+/// Upper bound of `a·b`.
+fn mul_up(a: f64, b: f64) -> f64 {
+    -mul_down(-a, b)
+}
+
+/// Upper bound of `a + b`.
+fn add_up(a: f64, b: f64) -> f64 {
+    -add_down(-a, -b)
 }
 
 /// `a + b` rounded down (a lower bound of the exact sum); NaN becomes −∞.
@@ -224,14 +260,16 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
                     return vec![f64::NEG_INFINITY; rows];
                 }
                 let n = w.nrows(); // inner dimension of lam·W
-                let w_amax: Vec<f64> = w.rows().into_iter().map(|row| nonneg_dot_upper(row, &amax)).collect();
-                let sum_amax = amax.iter().fold(0.0f64, |s, &v| (s + v).next_up());
-                let underflow = (n as f64 * ETA * sum_amax).next_up() + ETA;
+                let g_in = gamma(w.ncols());
+                let w_amax: Vec<f64> = w.rows().into_iter().map(|row| abs_dot_upper(row, &amax, g_in)).collect();
+                let sum_amax = amax.iter().fold(0.0f64, |s, &v| add_up(s, v));
+                let underflow = add_up(mul_up(n as f64 * ETA, sum_amax), ETA);
                 let g = gamma(n);
                 for r in 0..rows {
                     let lr = lam.row(r);
-                    let lam_b = lower(lr.iter().zip(b).fold(Interval::ZERO, |s, (&c, &bi)| s + Interval::point(c) * Interval::point(bi)));
-                    let err = ((g * nonneg_dot_upper(lr, &w_amax)).next_up() + underflow).next_up();
+                    // lower bound of lam_r·b, every product and sum rounded down
+                    let lam_b = lr.iter().zip(b).fold(0.0f64, |s, (&c, &bi)| add_down(s, mul_down(c, bi)));
+                    let err = add_up(mul_up(g, abs_dot_upper(lr, &w_amax, g)), underflow);
                     d[r] = add_down(add_down(d[r], lam_b), -err);
                 }
                 lam = lam.dot(w);
@@ -269,11 +307,10 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
                             if !lp.is_finite() {
                                 lp = 0.0;
                             }
-                            // min of λ·relu(z) − λ'·z over z ∈ {l, 0, u}; relu(l) = 0, relu(u) = u.
-                            let lam_i = Interval::point(l);
-                            let lp_i = Interval::point(lp);
-                            let at_l = lower(Interval::ZERO - lp_i * Interval::point(lo));
-                            let at_u = lower(lam_i * Interval::point(hi) - lp_i * Interval::point(hi));
+                            // min of λ·relu(z) − λ'·z over z ∈ {l, 0, u}, each rounded
+                            // down: relu(l) = 0, relu(0) = 0, relu(u) = u.
+                            let at_l = mul_down(-lp, lo);
+                            let at_u = add_down(mul_down(l, hi), mul_down(-lp, hi));
                             offset = add_down(offset, at_l.min(at_u).min(0.0));
                             lam[[r, i]] = lp;
                         }
@@ -292,8 +329,18 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
     let box_ = &vals[stop];
     (0..rows)
         .map(|r| {
-            let s = lam.row(r).iter().zip(box_).fold(Interval::ZERO, |s, (&c, x)| s + x.scale(c));
-            let v = add_down(d[r], lower(s));
+            // lower bound of Σ c·[x]: the lower end of each term, rounded down
+            let s = lam.row(r).iter().zip(box_).fold(0.0f64, |s, (&c, x)| {
+                let t = if c > 0.0 {
+                    mul_down(c, x.lo())
+                } else if c < 0.0 {
+                    mul_down(c, x.hi())
+                } else {
+                    0.0
+                };
+                add_down(s, t)
+            });
+            let v = add_down(d[r], s);
             if v.is_nan() {
                 f64::NEG_INFINITY
             } else {
