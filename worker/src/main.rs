@@ -119,6 +119,8 @@ fn print_bounds(b: &OutputBounds, json: bool) {
         println!("{}", serde_json::to_string(&out).expect("numbers serialise"));
         return;
     }
+    println!("Sound bounds for every input in the box, on the network as stored (real arithmetic on its");
+    println!("weights). Engineering evidence under these assumptions, not a certification.");
     println!("output  lower                     upper");
     for (i, o) in b.outputs.iter().enumerate() {
         println!("y{i:<6} {:<25e} {:<25e}", o.lo(), o.hi());

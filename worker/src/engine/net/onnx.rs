@@ -53,6 +53,8 @@ pub enum NetError {
 
 /// Most elements of one tensor or matrix the importer will allocate (128 MiB of f64).
 const MAX_ELEMENTS: usize = 1 << 24;
+/// Most matrix elements of one import in total (512 MiB of f64).
+const MAX_TOTAL_ELEMENTS: usize = 1 << 26;
 
 /// Decode an ONNX model and normalise it into a [`Network`].
 ///
@@ -367,6 +369,8 @@ struct Importer<'g> {
     producer: HashMap<&'g str, usize>,
     input_dim: usize,
     float32: bool,
+    /// Matrix elements allocated so far.
+    allocated: usize,
 }
 
 impl<'g> Importer<'g> {
@@ -440,7 +444,7 @@ impl<'g> Importer<'g> {
                 }
             }
         }
-        Ok(Importer { graph, values, producer, input_dim, float32 })
+        Ok(Importer { graph, values, producer, input_dim, float32, allocated: 0 })
     }
 
     /// Nodes the graph output depends on, in an order where producers come first.
@@ -608,6 +612,18 @@ impl<'g> Importer<'g> {
         }
     }
 
+    /// A zero matrix, or an error naming the node if it, or all matrices of the import
+    /// together, would be too large (a hostile model must not exhaust memory).
+    fn sized(&mut self, rows: usize, cols: usize, label: &str) -> Result<Array2<f64>, NetError> {
+        match rows.checked_mul(cols) {
+            Some(n) if n <= MAX_ELEMENTS && self.allocated + n <= MAX_TOTAL_ELEMENTS => {
+                self.allocated += n;
+                Ok(Array2::zeros((rows, cols)))
+            }
+            _ => Err(NetError::Invalid { node: label.into(), detail: format!("needs a {rows}×{cols} matrix: too large") }),
+        }
+    }
+
     fn dynamic(&self, node: &NodeProto, label: &str, k: usize) -> Result<Dyn, NetError> {
         match self.required(node, label, k)? {
             Value::Dyn(d) => Ok(d.clone()),
@@ -751,7 +767,7 @@ impl<'g> Importer<'g> {
                     return Err(mismatch(format!("input {:?} times weights '{}' {:?}", x.dims, c.name, c.dims)));
                 }
                 let rows: usize = lead.iter().product();
-                let w = sized(rows * n, rows * k, label)?;
+                let w = self.sized(rows * n, rows * k, label)?;
                 let mut w = w;
                 for r in 0..rows {
                     for kk in 0..k {
@@ -783,7 +799,7 @@ impl<'g> Importer<'g> {
                 if xk != k {
                     return Err(mismatch(format!("weights '{}' {:?} times input {:?}", c.name, c.dims, x.dims)));
                 }
-                let mut w = sized(m * n, k * n, label)?;
+                let mut w = self.sized(m * n, k * n, label)?;
                 for mm in 0..m {
                     for nn in 0..n {
                         for kk in 0..k {
@@ -847,7 +863,7 @@ impl<'g> Importer<'g> {
                 if k != k2 {
                     return Err(mismatch(format!("A {:?} and B '{}' {:?} do not chain", x.dims, bt.name, bt.dims)));
                 }
-                let mut w = sized(m * n, m * k, label)?;
+                let mut w = self.sized(m * n, m * k, label)?;
                 for i in 0..m {
                     for j in 0..n {
                         for kk in 0..k {
@@ -866,7 +882,7 @@ impl<'g> Importer<'g> {
                 if k != k2 {
                     return Err(mismatch(format!("A '{}' {:?} and B {:?} do not chain", at.name, at.dims, x.dims)));
                 }
-                let mut w = sized(m * n, k * n, label)?;
+                let mut w = self.sized(m * n, k * n, label)?;
                 for i in 0..m {
                     for j in 0..n {
                         for kk in 0..k {
@@ -935,13 +951,6 @@ fn with_dims(v: Value, dims: Vec<usize>) -> Value {
     }
 }
 
-/// A zero matrix, or an error naming the node if it would be too large.
-fn sized(rows: usize, cols: usize, label: &str) -> Result<Array2<f64>, NetError> {
-    match rows.checked_mul(cols) {
-        Some(n) if n <= MAX_ELEMENTS => Ok(Array2::zeros((rows, cols))),
-        _ => Err(NetError::Invalid { node: label.into(), detail: format!("needs a {rows}×{cols} matrix: too large") }),
-    }
-}
 
 /// `values` (shape `from`) broadcast to shape `to` by the standard's multidirectional
 /// (numpy) rule, when the result has shape `to` exactly; `None` otherwise.
