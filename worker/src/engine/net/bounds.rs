@@ -68,7 +68,7 @@ impl OutputBounds {
     /// with `i ≠ j` holds 0), so the arg-max of the outputs is the same everywhere.
     pub fn orders_all_pairs(&self) -> bool {
         self.diff.iter().enumerate().all(|(i, row)| {
-            row.iter().enumerate().all(|(j, d)| i == j || !(d.lo() <= 0.0 && 0.0 <= d.hi()) && !d.is_undefined())
+            row.iter().enumerate().all(|(j, d)| i == j || !(d.is_undefined() || d.contains_zero()))
         })
     }
 }
@@ -181,7 +181,7 @@ fn interval_bounds(net: &Network, input: &[Interval]) -> OutputBounds {
 /// Unit roundoff of f64 (round to nearest).
 const U: f64 = 1.0 / 9007199254740992.0; // 2⁻⁵³
 /// Smallest positive subnormal: bounds the absolute error of an underflowing product.
-const ETA: f64 = 4.9406564584124654e-324; // 2⁻¹⁰⁷⁴
+const ETA: f64 = f64::from_bits(1); // 2⁻¹⁰⁷⁴
 
 /// An upper bound on `γ_n = n·u / (1 − n·u)`.
 fn gamma(n: usize) -> f64 {
