@@ -91,16 +91,26 @@ pub fn output_bounds(net: &Network, input: &[Interval], method: BoundsMethod) ->
     }
     match method {
         BoundsMethod::Interval => interval_bounds(net, input),
-        BoundsMethod::Symbolic => symbolic_bounds(net, input, &interval_bounds(net, input)),
+        BoundsMethod::Symbolic => symbolic_bounds(net, input, Some(&interval_bounds(net, input))),
         BoundsMethod::Portfolio => {
             let ib = interval_bounds(net, input);
             if ib.orders_all_pairs() {
                 ib
             } else {
-                symbolic_bounds(net, input, &ib)
+                symbolic_bounds(net, input, Some(&ib))
             }
         }
     }
+}
+
+/// The symbolic result *before* the final intersection with interval bounds, so that
+/// tests can check the backward pass on its own (the intersection would hide an
+/// unsound backward pass behind a sound interval one). Same guarantee as
+/// [`output_bounds`]; not for production use (it is never tighter).
+#[doc(hidden)]
+pub fn raw_symbolic_bounds(net: &Network, input: &[Interval]) -> OutputBounds {
+    assert_eq!(input.len(), net.input_dim(), "network takes {} inputs, got {}", net.input_dim(), input.len());
+    symbolic_bounds(net, input, None)
 }
 
 // ---------------------------------------------------------------------------
@@ -114,24 +124,11 @@ fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
             if a.iter().any(|x| x.is_undefined()) {
                 return vec![Interval::UNDEFINED; b.len()];
             }
-            w.rows()
-                .into_iter()
-                .zip(b.iter())
-                .map(|(row, &bi)| {
-                    // Σ w_ij·[a_j] + b_i: each product end and each sum rounded outward.
-                    let (mut lo, mut hi) = (bi, bi);
-                    for (&wij, aj) in row.iter().zip(a) {
-                        if wij > 0.0 {
-                            lo = add_down(lo, mul_down(wij, aj.lo()));
-                            hi = add_up(hi, mul_up(wij, aj.hi()));
-                        } else if wij < 0.0 {
-                            lo = add_down(lo, mul_down(wij, aj.hi()));
-                            hi = add_up(hi, mul_up(wij, aj.lo()));
-                        }
-                    }
-                    Interval::new(lo, hi)
-                })
-                .collect()
+            if a.iter().all(|x| x.is_bounded()) {
+                dense_mid_rad(w, b, a)
+            } else {
+                dense_endpoints(w, b, a)
+            }
         }
         Layer::Relu => a.iter().map(|x| x.max(Interval::ZERO)).collect(),
         Layer::Sigmoid => a
@@ -147,6 +144,58 @@ fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
             .collect(),
         Layer::Tanh => a.iter().map(|x| x.tanh()).collect(),
     }
+}
+
+/// `W·[a] + b` in midpoint–radius form, for bounded `a`. With `a ∈ m ± ρ` entry-wise
+/// (`m = mid`, `ρ ≥` the radius), the exact image is `W·m + b ± |W|·ρ`. The computed
+/// `c = fl(W·m + b)` (any summation order, FMA or not) is within
+/// `γ_{n+1}·(|W|·|m| + |b|) + (n+1)·η` of `W·m + b` (the standard dot-product bound,
+/// the bias being one more term), and the computed non-negative sums are turned into
+/// upper bounds by [`abs_dot_upper`]'s rule. So `[c − R, c + R]`, rounded outward,
+/// encloses the image, with `R` the sum of those upper bounds.
+fn dense_mid_rad(w: &Array2<f64>, b: &ndarray::Array1<f64>, a: &[Interval]) -> Vec<Interval> {
+    let n = w.ncols();
+    let m = ndarray::Array1::from_iter(a.iter().map(|x| x.mid()));
+    let rho = ndarray::Array1::from_iter(a.iter().map(|x| x.rad()));
+    let abs_w = w.mapv(f64::abs);
+    let c = w.dot(&m) + b;
+    let mag = abs_w.dot(&m.mapv(f64::abs)) + b.mapv(f64::abs);
+    let rad = abs_w.dot(&rho);
+    let g1 = gamma(n + 1);
+    let g0 = gamma(n);
+    let eta1 = (n + 1) as f64 * ETA;
+    let up_sum = |s: f64, g: f64, k: usize| mul_up(add_up(s, k as f64 * ETA), add_up(1.0, 2.0 * g));
+    c.iter()
+        .zip(mag.iter().zip(rad.iter()))
+        .map(|(&ci, (&mi, &ri))| {
+            let mag_up = up_sum(mi, g1, n + 1);
+            let rad_up = up_sum(ri, g0, n);
+            let r = add_up(add_up(rad_up, mul_up(g1, mag_up)), eta1);
+            Interval::new(add_down(ci, -r), add_up(ci, r))
+        })
+        .collect()
+}
+
+/// `W·[a] + b` by endpoints (used when some input is unbounded): each product end and
+/// each sum rounded outward.
+fn dense_endpoints(w: &Array2<f64>, b: &ndarray::Array1<f64>, a: &[Interval]) -> Vec<Interval> {
+    w.rows()
+        .into_iter()
+        .zip(b.iter())
+        .map(|(row, &bi)| {
+            let (mut lo, mut hi) = (bi, bi);
+            for (&wij, aj) in row.iter().zip(a) {
+                if wij > 0.0 {
+                    lo = add_down(lo, mul_down(wij, aj.lo()));
+                    hi = add_up(hi, mul_up(wij, aj.hi()));
+                } else if wij < 0.0 {
+                    lo = add_down(lo, mul_down(wij, aj.hi()));
+                    hi = add_up(hi, mul_up(wij, aj.lo()));
+                }
+            }
+            Interval::new(lo, hi)
+        })
+        .collect()
 }
 
 /// Bounds of every value of the chain: `v[0]` is the input box, `v[k + 1]` the image
@@ -360,7 +409,9 @@ fn plus_minus_units(dim: usize, which: &[usize]) -> Array2<f64> {
     obj
 }
 
-fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -> OutputBounds {
+/// Symbolic bounds; intersected with `interval` (and with the forward interval bounds
+/// of the tightened chain) when given, else the raw backward-pass result.
+fn symbolic_bounds(net: &Network, input: &[Interval], interval: Option<&OutputBounds>) -> OutputBounds {
     let layers = net.layers();
     let mut vals: Vec<Vec<Interval>> = vec![input.to_vec()];
     for (k, layer) in layers.iter().enumerate() {
@@ -396,7 +447,10 @@ fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -
     let outputs: Vec<Interval> = (0..m)
         .map(|i| {
             let sym = Interval::new(lows[2 * i], -lows[2 * i + 1]);
-            tightest(&[sym, forward_out[i], interval.outputs[i]])
+            match interval {
+                Some(ib) => tightest(&[sym, forward_out[i], ib.outputs[i]]),
+                None => sym,
+            }
         })
         .collect();
     let mut diff = differences(&outputs);
@@ -404,7 +458,10 @@ fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -
         // Lower end from e_i − e_j; upper end from −(lower bound of e_j − e_i).
         let back = pairs.iter().position(|&p| p == (j, i)).expect("both orders are listed");
         let sym = Interval::new(lows[2 * m + t], -lows[2 * m + back]);
-        diff[i][j] = tightest(&[sym, diff[i][j], interval.diff[i][j]]);
+        diff[i][j] = match interval {
+            Some(ib) => tightest(&[sym, diff[i][j], ib.diff[i][j]]),
+            None => sym,
+        };
     }
     OutputBounds { outputs, diff }
 }
