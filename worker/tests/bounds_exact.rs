@@ -131,6 +131,36 @@ fn bounds_hold_the_exact_value_on_tiny_boxes() {
             }
         }
     }
+    // Cancellation in the last step, lam·x over the box: inputs nearly equal in pairs,
+    // weights that take their differences with inexact coefficients.
+    for t in 0..12 {
+        let c = 0.1 + rng.unit();
+        let w1 = ndarray::array![[c, -c], [-1.3 * c, 1.3 * c]];
+        let w2 = Array2::from_shape_fn((2, 2), |_| rng.normal());
+        let net = Network::new(
+            2,
+            vec![
+                Layer::Dense { w: w1, b: Array1::zeros(2) },
+                Layer::Relu,
+                Layer::Dense { w: w2, b: Array1::zeros(2) },
+            ],
+            false,
+        )
+        .unwrap();
+        let a = rng.normal() * 1000.0;
+        let x = [a, a * (1.0 + 1e-9 * rng.normal())];
+        let input: Vec<Interval> = x.iter().map(|&v| Interval::point(v)).collect();
+        cases.push(json!({
+            "name": format!("cancelling differences {t}"),
+            "layers": layers_json(&net),
+            "points": [x],
+            "bounds": {
+                "interval": bounds_json(&output_bounds(&net, &input, BoundsMethod::Interval)),
+                "symbolic": bounds_json(&output_bounds(&net, &input, BoundsMethod::Symbolic)),
+                "raw_symbolic": bounds_json(&raw_symbolic_bounds(&net, &input)),
+            },
+        }));
+    }
     let dir = common::temp_dir("bounds-exact");
     let file = dir.join("cases.json");
     std::fs::write(&file, serde_json::to_string(&json!({ "cases": cases })).unwrap()).unwrap();

@@ -36,16 +36,21 @@
 //!    floating-point dot products) and `η = 2⁻¹⁰⁷⁴` covers underflowing products.
 //!    Hence for every `a` with `|a| ≤ amax` (known from the bounds of `a`):
 //!    `Λ·W·a ≥ M·a − γ_n·|Λ|·(|W|·amax) − n·η·Σ amax`, and the error term is computed
-//!    rounding upward and subtracted from the constant. `Λ·b` is evaluated in interval
-//!    arithmetic and its lower end taken.
+//!    rounding upward and subtracted from the constant. Likewise `Λ·b ≥ fl(Λ·b) −
+//!    γ_n·|Λ|·|b| − n·η`; both allowances are one product `|Λ|·(|W|·amax + |b|)`
+//!    computed with upward-rounded error bounds.
 //! 2. *ReLU*. For ANY float coefficient `λ'` we choose, the function
 //!    `g(z) = λ·relu(z) − λ'·z` is piecewise linear with its only kink at 0, so its
 //!    minimum over `[l, u]` is attained at `l`, `u` or `0`. Evaluating `g` at those
 //!    points in interval arithmetic and taking the lowest lower end gives an offset
 //!    `d` with `λ·relu(z) ≥ λ'·z + d` on `[l, u]` — rigorous whatever rounding went
 //!    into the choice of `λ'` (the relaxation only *chooses* `λ'`).
-//! 3. *Concretisation*: `Λ·x` over the input box is evaluated in interval arithmetic.
+//! 3. *Concretisation*: over a box `m ± ρ`, `Λ·x ≥ fl(Λ·m) − |Λ|·ρ − γ_n·|Λ|·|m| − n·η`
+//!    (or, when the box is unbounded, term by term with products rounded down).
 //!    All additions into the constant are rounded down.
+//!
+//! Interval propagation through a dense layer uses the same midpoint–radius form with
+//! the same error allowance, rounded outward.
 //!
 //! Upper bounds are `−(lower bound of −objective)`. Any NaN met in a bound becomes an
 //! infinite (vacuous) bound, never a finite one.
@@ -53,7 +58,7 @@
 use super::{Layer, Network};
 use crate::engine::interval::Interval;
 use crate::engine::spec::BoundsMethod;
-use ndarray::{Array2, ArrayView1};
+use ndarray::{Array1, Array2};
 
 /// Bounds over a box of inputs: `outputs[i] ∋ y_i(x)` and `diff[i][j] ∋ y_i(x) − y_j(x)`
 /// for every real `x` in the box (`diff[i][i]` is exactly 0).
@@ -151,12 +156,12 @@ fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
 /// `c = fl(W·m + b)` (any summation order, FMA or not) is within
 /// `γ_{n+1}·(|W|·|m| + |b|) + (n+1)·η` of `W·m + b` (the standard dot-product bound,
 /// the bias being one more term), and the computed non-negative sums are turned into
-/// upper bounds by [`abs_dot_upper`]'s rule. So `[c − R, c + R]`, rounded outward,
+/// upper bounds by [`abs_matvec_upper`]'s rule. So `[c − R, c + R]`, rounded outward,
 /// encloses the image, with `R` the sum of those upper bounds.
-fn dense_mid_rad(w: &Array2<f64>, b: &ndarray::Array1<f64>, a: &[Interval]) -> Vec<Interval> {
+fn dense_mid_rad(w: &Array2<f64>, b: &Array1<f64>, a: &[Interval]) -> Vec<Interval> {
     let n = w.ncols();
-    let m = ndarray::Array1::from_iter(a.iter().map(|x| x.mid()));
-    let rho = ndarray::Array1::from_iter(a.iter().map(|x| x.rad()));
+    let m = Array1::from_iter(a.iter().map(|x| x.mid()));
+    let rho = Array1::from_iter(a.iter().map(|x| x.rad()));
     let abs_w = w.mapv(f64::abs);
     let c = w.dot(&m) + b;
     let mag = abs_w.dot(&m.mapv(f64::abs)) + b.mapv(f64::abs);
@@ -178,7 +183,7 @@ fn dense_mid_rad(w: &Array2<f64>, b: &ndarray::Array1<f64>, a: &[Interval]) -> V
 
 /// `W·[a] + b` by endpoints (used when some input is unbounded): each product end and
 /// each sum rounded outward.
-fn dense_endpoints(w: &Array2<f64>, b: &ndarray::Array1<f64>, a: &[Interval]) -> Vec<Interval> {
+fn dense_endpoints(w: &Array2<f64>, b: &Array1<f64>, a: &[Interval]) -> Vec<Interval> {
     w.rows()
         .into_iter()
         .zip(b.iter())
@@ -238,16 +243,16 @@ fn gamma(n: usize) -> f64 {
     (nu / (Interval::ONE - nu)).hi()
 }
 
-/// An upper bound on `Σ_j |a_j|·x_j` for `x ≥ 0`, given `g ≥ γ_n`, `n = x.len()`:
-/// the computed sum of non-negative terms is within `γ_n·exact + n·η` of the exact
+/// Entry-wise upper bounds on `A·x` for a non-negative matrix `A` and `x ≥ 0`: each
+/// computed sum of `n` non-negative products is within `γ_n·exact + n·η` of the exact
 /// one, so `exact ≤ (fl + n·η)/(1 − γ_n)`, and `1/(1 − γ) ≤ 1 + 2γ` for `γ ≤ 1/2`;
-/// each step below rounds up.
-fn abs_dot_upper(a: ArrayView1<f64>, x: &[f64], g: f64) -> f64 {
+/// each step rounds up.
+fn abs_matvec_upper(a: &Array2<f64>, x: &Array1<f64>) -> Array1<f64> {
     let n = x.len();
+    let g = gamma(n);
     assert!(g <= 0.5, "dimension too large for the error bound");
-    let s: f64 = a.iter().zip(x).map(|(&ai, &xi)| ai.abs() * xi).sum();
-    let s = (s + n as f64 * ETA).next_up();
-    (s * (1.0 + 2.0 * g).next_up()).next_up()
+    let factor = add_up(1.0, 2.0 * g);
+    a.dot(x).mapv(|s| mul_up(add_up(s, n as f64 * ETA), factor))
 }
 
 // Directed rounding of one operation on exact f64 operands. Round-to-nearest is within
@@ -308,18 +313,23 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
                 if amax.iter().any(|v| !v.is_finite()) {
                     return vec![f64::NEG_INFINITY; rows];
                 }
-                let n = w.nrows(); // inner dimension of lam·W
-                let g_in = gamma(w.ncols());
-                let w_amax: Vec<f64> = w.rows().into_iter().map(|row| abs_dot_upper(row, &amax, g_in)).collect();
+                let n = w.nrows(); // inner dimension of lam·W and of lam·b
+                let amax = Array1::from(amax);
+                // q ≥ |W|·amax + |b| entry-wise
+                let wa = abs_matvec_upper(&w.mapv(f64::abs), &amax);
+                let q = Array1::from_iter(wa.iter().zip(b).map(|(&v, &bi)| add_up(v, bi.abs())));
+                // lq ≥ |lam|·(|W|·amax + |b|)
+                let lq = abs_matvec_upper(&lam.mapv(f64::abs), &q);
                 let sum_amax = amax.iter().fold(0.0f64, |s, &v| add_up(s, v));
-                let underflow = add_up(mul_up(n as f64 * ETA, sum_amax), ETA);
+                // underflow: n·η per entry of lam·W (times Σ amax), and n·η for lam·b
+                let underflow = add_up(mul_up(n as f64 * ETA, add_up(sum_amax, 1.0)), ETA);
                 let g = gamma(n);
+                // fl(lam·b) is within γ_n·|lam|·|b| + n·η of lam·b; fl(lam·W) within
+                // γ_n·|lam|·|W| + n·η of lam·W, which costs γ_n·|lam|·|W|·amax on a.
+                let lam_b = lam.dot(b);
                 for r in 0..rows {
-                    let lr = lam.row(r);
-                    // lower bound of lam_r·b, every product and sum rounded down
-                    let lam_b = lr.iter().zip(b).fold(0.0f64, |s, (&c, &bi)| add_down(s, mul_down(c, bi)));
-                    let err = add_up(mul_up(g, abs_dot_upper(lr, &w_amax, g)), underflow);
-                    d[r] = add_down(add_down(d[r], lam_b), -err);
+                    let err = add_up(mul_up(g, lq[r]), underflow);
+                    d[r] = add_down(add_down(d[r], lam_b[r]), -err);
                 }
                 lam = lam.dot(w);
             }
@@ -374,8 +384,27 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
             }
         }
     }
-    // Step 3: lam·v[stop] over the box of v[stop], in interval arithmetic.
+    // Step 3: lam·v[stop] over the box of v[stop].
     let box_ = &vals[stop];
+    if box_.iter().all(|x| x.is_bounded()) {
+        // Midpoint–radius: lam·x ≥ lam·m − |lam|·ρ for x ∈ m ± ρ, and fl(lam·m) is
+        // within γ_n·|lam|·|m| + n·η of lam·m.
+        let n = box_.len();
+        let m = Array1::from_iter(box_.iter().map(|x| x.mid()));
+        let rho = Array1::from_iter(box_.iter().map(|x| x.rad()));
+        let abs_lam = lam.mapv(f64::abs);
+        let c = lam.dot(&m);
+        let lm = abs_matvec_upper(&abs_lam, &m.mapv(f64::abs));
+        let lr = abs_matvec_upper(&abs_lam, &rho);
+        let g = gamma(n);
+        return (0..rows)
+            .map(|r| {
+                let slack = add_up(add_up(lr[r], mul_up(g, lm[r])), n as f64 * ETA);
+                add_down(d[r], add_down(c[r], -slack))
+            })
+            .collect();
+    }
+    // Some end is infinite: term by term, the lower end of each product rounded down.
     (0..rows)
         .map(|r| {
             // lower bound of Σ c·[x]: the lower end of each term, rounded down
