@@ -156,24 +156,34 @@ struct BoundsJson {
     diff_upper: Vec<Vec<f64>>,
 }
 
+/// Print the bounds; a closed output pipe (e.g. `| head`) ends printing quietly.
 fn print_bounds(b: &OutputBounds, json: bool) {
+    use std::io::Write;
+    let text = format_bounds(b, json);
+    let _ = std::io::stdout().lock().write_all(text.as_bytes());
+}
+
+fn format_bounds(b: &OutputBounds, json: bool) -> String {
+    use std::fmt::Write;
+    let mut out = String::new();
     if json {
         // Infinite (vacuous) ends print as null, since JSON has no infinity.
-        let out = BoundsJson {
+        let doc = BoundsJson {
             lower: b.outputs.iter().map(|i| i.lo()).collect(),
             upper: b.outputs.iter().map(|i| i.hi()).collect(),
             diff_lower: b.diff.iter().map(|r| r.iter().map(|i| i.lo()).collect()).collect(),
             diff_upper: b.diff.iter().map(|r| r.iter().map(|i| i.hi()).collect()).collect(),
         };
-        println!("{}", serde_json::to_string(&out).expect("numbers serialise"));
-        return;
+        return serde_json::to_string(&doc).expect("numbers serialise") + "\n";
     }
-    println!("output  lower                     upper");
+    let _ = writeln!(out, "Sound bounds for every input in the box, on the network as stored (real arithmetic on its");
+    let _ = writeln!(out, "weights). Engineering evidence under these assumptions, not a certification.");
+    let _ = writeln!(out, "output  lower                     upper");
     for (i, o) in b.outputs.iter().enumerate() {
-        println!("y{i:<6} {:<25e} {:<25e}", o.lo(), o.hi());
+        let _ = writeln!(out, "y{i:<6} {:<25e} {:<25e}", o.lo(), o.hi());
     }
     if b.outputs.len() > 1 {
-        println!("\ndifferences y_i - y_j (lower, upper):");
+        let _ = writeln!(out, "\ndifferences y_i - y_j (lower, upper):");
         for (i, row) in b.diff.iter().enumerate() {
             for (j, d) in row.iter().enumerate().filter(|(j, _)| *j != i) {
                 let verdict = if d.lo() > 0.0 {
@@ -183,10 +193,11 @@ fn print_bounds(b: &OutputBounds, json: bool) {
                 } else {
                     ""
                 };
-                println!("  y{i} - y{j}: [{:e}, {:e}]{verdict}", d.lo(), d.hi());
+                let _ = writeln!(out, "  y{i} - y{j}: [{:e}, {:e}]{verdict}", d.lo(), d.hi());
             }
         }
     }
+    out
 }
 
 fn validate(path: &PathBuf, json: bool) -> ExitCode {

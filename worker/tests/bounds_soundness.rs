@@ -12,6 +12,7 @@ mod common;
 use common::Rng;
 use ndarray::{Array1, Array2};
 use tessera_worker::engine::interval::Interval;
+use tessera_worker::engine::net::bounds::raw_symbolic_bounds;
 use tessera_worker::engine::net::{output_bounds, Layer, Network, OutputBounds};
 use tessera_worker::engine::spec::BoundsMethod;
 
@@ -173,6 +174,8 @@ fn sampled_outputs_stay_inside_bounds() {
                 let ib = output_bounds(&net, &input, BoundsMethod::Interval);
                 let sym = output_bounds(&net, &input, BoundsMethod::Symbolic);
                 let pf = output_bounds(&net, &input, BoundsMethod::Portfolio);
+                // The backward pass alone, before intersection with interval bounds.
+                let raw = raw_symbolic_bounds(&net, &input);
                 let what = format!("net {widths:?} f32={f32_weights} radius {r}");
                 never_wider(&sym, &ib, &what);
                 assert!(pf == ib || pf == sym, "{what}: portfolio is one of the two");
@@ -180,6 +183,7 @@ fn sampled_outputs_stay_inside_bounds() {
                     let (y, e) = eval_with_error(&net, &x);
                     check_inside(&ib, &y, &e, &format!("{what} interval at {x:?}"));
                     check_inside(&sym, &y, &e, &format!("{what} symbolic at {x:?}"));
+                    check_inside(&raw, &y, &e, &format!("{what} raw symbolic at {x:?}"));
                 }
                 let ratio = width_sum(&sym) / width_sum(&ib);
                 ratio_sum += ratio;

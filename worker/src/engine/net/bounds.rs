@@ -36,16 +36,21 @@
 //!    floating-point dot products) and `η = 2⁻¹⁰⁷⁴` covers underflowing products.
 //!    Hence for every `a` with `|a| ≤ amax` (known from the bounds of `a`):
 //!    `Λ·W·a ≥ M·a − γ_n·|Λ|·(|W|·amax) − n·η·Σ amax`, and the error term is computed
-//!    rounding upward and subtracted from the constant. `Λ·b` is evaluated in interval
-//!    arithmetic and its lower end taken.
+//!    rounding upward and subtracted from the constant. Likewise `Λ·b ≥ fl(Λ·b) −
+//!    γ_n·|Λ|·|b| − n·η`; both allowances are one product `|Λ|·(|W|·amax + |b|)`
+//!    computed with upward-rounded error bounds.
 //! 2. *ReLU*. For ANY float coefficient `λ'` we choose, the function
 //!    `g(z) = λ·relu(z) − λ'·z` is piecewise linear with its only kink at 0, so its
 //!    minimum over `[l, u]` is attained at `l`, `u` or `0`. Evaluating `g` at those
 //!    points in interval arithmetic and taking the lowest lower end gives an offset
 //!    `d` with `λ·relu(z) ≥ λ'·z + d` on `[l, u]` — rigorous whatever rounding went
 //!    into the choice of `λ'` (the relaxation only *chooses* `λ'`).
-//! 3. *Concretisation*: `Λ·x` over the input box is evaluated in interval arithmetic.
+//! 3. *Concretisation*: over a box `m ± ρ`, `Λ·x ≥ fl(Λ·m) − |Λ|·ρ − γ_n·|Λ|·|m| − n·η`
+//!    (or, when the box is unbounded, term by term with products rounded down).
 //!    All additions into the constant are rounded down.
+//!
+//! Interval propagation through a dense layer uses the same midpoint–radius form with
+//! the same error allowance, rounded outward.
 //!
 //! Upper bounds are `−(lower bound of −objective)`. Any NaN met in a bound becomes an
 //! infinite (vacuous) bound, never a finite one.
@@ -53,7 +58,7 @@
 use super::{Layer, Network};
 use crate::engine::interval::Interval;
 use crate::engine::spec::BoundsMethod;
-use ndarray::{Array2, ArrayView1};
+use ndarray::{Array1, Array2};
 
 /// Bounds over a box of inputs: `outputs[i] ∋ y_i(x)` and `diff[i][j] ∋ y_i(x) − y_j(x)`
 /// for every real `x` in the box (`diff[i][i]` is exactly 0).
@@ -68,7 +73,7 @@ impl OutputBounds {
     /// with `i ≠ j` holds 0), so the arg-max of the outputs is the same everywhere.
     pub fn orders_all_pairs(&self) -> bool {
         self.diff.iter().enumerate().all(|(i, row)| {
-            row.iter().enumerate().all(|(j, d)| i == j || !(d.lo() <= 0.0 && 0.0 <= d.hi()) && !d.is_undefined())
+            row.iter().enumerate().all(|(j, d)| i == j || !(d.is_undefined() || d.contains_zero()))
         })
     }
 }
@@ -91,16 +96,26 @@ pub fn output_bounds(net: &Network, input: &[Interval], method: BoundsMethod) ->
     }
     match method {
         BoundsMethod::Interval => interval_bounds(net, input),
-        BoundsMethod::Symbolic => symbolic_bounds(net, input, &interval_bounds(net, input)),
+        BoundsMethod::Symbolic => symbolic_bounds(net, input, Some(&interval_bounds(net, input))),
         BoundsMethod::Portfolio => {
             let ib = interval_bounds(net, input);
             if ib.orders_all_pairs() {
                 ib
             } else {
-                symbolic_bounds(net, input, &ib)
+                symbolic_bounds(net, input, Some(&ib))
             }
         }
     }
+}
+
+/// The symbolic result *before* the final intersection with interval bounds, so that
+/// tests can check the backward pass on its own (the intersection would hide an
+/// unsound backward pass behind a sound interval one). Same guarantee as
+/// [`output_bounds`]; not for production use (it is never tighter).
+#[doc(hidden)]
+pub fn raw_symbolic_bounds(net: &Network, input: &[Interval]) -> OutputBounds {
+    assert_eq!(input.len(), net.input_dim(), "network takes {} inputs, got {}", net.input_dim(), input.len());
+    symbolic_bounds(net, input, None)
 }
 
 // ---------------------------------------------------------------------------
@@ -110,12 +125,16 @@ pub fn output_bounds(net: &Network, input: &[Interval], method: BoundsMethod) ->
 /// The interval image of one layer (outward rounded, so it encloses the real image).
 fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
     match layer {
-        Layer::Dense { w, b } => w
-            .rows()
-            .into_iter()
-            .zip(b.iter())
-            .map(|(row, &bi)| row.iter().zip(a).fold(Interval::point(bi), |s, (&wij, &aj)| s + aj.scale(wij)))
-            .collect(),
+        Layer::Dense { w, b } => {
+            if a.iter().any(|x| x.is_undefined()) {
+                return vec![Interval::UNDEFINED; b.len()];
+            }
+            if a.iter().all(|x| x.is_bounded()) {
+                dense_mid_rad(w, b, a)
+            } else {
+                dense_endpoints(w, b, a)
+            }
+        }
         Layer::Relu => a.iter().map(|x| x.max(Interval::ZERO)).collect(),
         Layer::Sigmoid => a
             .iter()
@@ -130,6 +149,58 @@ fn forward_layer(layer: &Layer, a: &[Interval]) -> Vec<Interval> {
             .collect(),
         Layer::Tanh => a.iter().map(|x| x.tanh()).collect(),
     }
+}
+
+/// `W·[a] + b` in midpoint–radius form, for bounded `a`. With `a ∈ m ± ρ` entry-wise
+/// (`m = mid`, `ρ ≥` the radius), the exact image is `W·m + b ± |W|·ρ`. The computed
+/// `c = fl(W·m + b)` (any summation order, FMA or not) is within
+/// `γ_{n+1}·(|W|·|m| + |b|) + (n+1)·η` of `W·m + b` (the standard dot-product bound,
+/// the bias being one more term), and the computed non-negative sums are turned into
+/// upper bounds by [`abs_matvec_upper`]'s rule. So `[c − R, c + R]`, rounded outward,
+/// encloses the image, with `R` the sum of those upper bounds.
+fn dense_mid_rad(w: &Array2<f64>, b: &Array1<f64>, a: &[Interval]) -> Vec<Interval> {
+    let n = w.ncols();
+    let m = Array1::from_iter(a.iter().map(|x| x.mid()));
+    let rho = Array1::from_iter(a.iter().map(|x| x.rad()));
+    let abs_w = w.mapv(f64::abs);
+    let c = w.dot(&m) + b;
+    let mag = abs_w.dot(&m.mapv(f64::abs)) + b.mapv(f64::abs);
+    let rad = abs_w.dot(&rho);
+    let g1 = gamma(n + 1);
+    let g0 = gamma(n);
+    let eta1 = (n + 1) as f64 * ETA;
+    let up_sum = |s: f64, g: f64, k: usize| mul_up(add_up(s, k as f64 * ETA), add_up(1.0, 2.0 * g));
+    c.iter()
+        .zip(mag.iter().zip(rad.iter()))
+        .map(|(&ci, (&mi, &ri))| {
+            let mag_up = up_sum(mi, g1, n + 1);
+            let rad_up = up_sum(ri, g0, n);
+            let r = add_up(add_up(rad_up, mul_up(g1, mag_up)), eta1);
+            Interval::new(add_down(ci, -r), add_up(ci, r))
+        })
+        .collect()
+}
+
+/// `W·[a] + b` by endpoints (used when some input is unbounded): each product end and
+/// each sum rounded outward.
+fn dense_endpoints(w: &Array2<f64>, b: &Array1<f64>, a: &[Interval]) -> Vec<Interval> {
+    w.rows()
+        .into_iter()
+        .zip(b.iter())
+        .map(|(row, &bi)| {
+            let (mut lo, mut hi) = (bi, bi);
+            for (&wij, aj) in row.iter().zip(a) {
+                if wij > 0.0 {
+                    lo = add_down(lo, mul_down(wij, aj.lo()));
+                    hi = add_up(hi, mul_up(wij, aj.hi()));
+                } else if wij < 0.0 {
+                    lo = add_down(lo, mul_down(wij, aj.hi()));
+                    hi = add_up(hi, mul_up(wij, aj.lo()));
+                }
+            }
+            Interval::new(lo, hi)
+        })
+        .collect()
 }
 
 /// Bounds of every value of the chain: `v[0]` is the input box, `v[k + 1]` the image
@@ -164,7 +235,7 @@ fn interval_bounds(net: &Network, input: &[Interval]) -> OutputBounds {
 /// Unit roundoff of f64 (round to nearest).
 const U: f64 = 1.0 / 9007199254740992.0; // 2⁻⁵³
 /// Smallest positive subnormal: bounds the absolute error of an underflowing product.
-const ETA: f64 = 4.9406564584124654e-324; // 2⁻¹⁰⁷⁴
+const ETA: f64 = f64::from_bits(1); // 2⁻¹⁰⁷⁴
 
 /// An upper bound on `γ_n = n·u / (1 − n·u)`.
 fn gamma(n: usize) -> f64 {
@@ -172,25 +243,44 @@ fn gamma(n: usize) -> f64 {
     (nu / (Interval::ONE - nu)).hi()
 }
 
-/// An upper bound on `Σ_j a_j·x_j` for non-negative `a`, `x`: the computed sum is
-/// within `γ_n·exact + n·η` of the exact one, so `exact ≤ (fl + n·η)/(1 − γ_n)`, and
-/// `1/(1 − γ) ≤ 1 + 2γ` for `γ ≤ 1/2`; each step below rounds up.
-fn nonneg_dot_upper(a: ArrayView1<f64>, x: &[f64]) -> f64 {
+/// Entry-wise upper bounds on `A·x` for a non-negative matrix `A` and `x ≥ 0`: each
+/// computed sum of `n` non-negative products is within `γ_n·exact + n·η` of the exact
+/// one, so `exact ≤ (fl + n·η)/(1 − γ_n)`, and `1/(1 − γ) ≤ 1 + 2γ` for `γ ≤ 1/2`;
+/// each step rounds up.
+fn abs_matvec_upper(a: &Array2<f64>, x: &Array1<f64>) -> Array1<f64> {
     let n = x.len();
-    let s: f64 = a.iter().zip(x).map(|(&ai, &xi)| ai.abs() * xi).sum();
     let g = gamma(n);
     assert!(g <= 0.5, "dimension too large for the error bound");
-    let s = (s + n as f64 * ETA).next_up();
-    (s * (1.0 + 2.0 * g).next_up()).next_up()
+    let factor = add_up(1.0, 2.0 * g);
+    a.dot(x).mapv(|s| mul_up(add_up(s, n as f64 * ETA), factor))
 }
 
-/// A lower end that is −∞ when the interval is undefined (NaN never proves anything).
-fn lower(i: Interval) -> f64 {
-    if i.is_undefined() {
+// Directed rounding of one operation on exact f64 operands. Round-to-nearest is within
+// half an ulp of the exact result, so one step of `next_down`/`next_up` gives a lower
+// / upper bound (also at an overflow to ±∞ and in the subnormal range). A NaN result
+// (∞ − ∞, 0·∞) becomes the vacuous bound.
+
+/// Lower bound of `a·b`; `0·x` is exactly 0 even for infinite `x` (bounds stand for reals).
+fn mul_down(a: f64, b: f64) -> f64 {
+    if a == 0.0 || b == 0.0 {
+        return 0.0;
+    }
+    let p = a * b;
+    if p.is_nan() {
         f64::NEG_INFINITY
     } else {
-        i.lo()
+        p.next_down()
     }
+}
+
+/// Upper bound of `a·b`.
+fn mul_up(a: f64, b: f64) -> f64 {
+    -mul_down(-a, b)
+}
+
+/// Upper bound of `a + b`.
+fn add_up(a: f64, b: f64) -> f64 {
+    -add_down(-a, -b)
 }
 
 /// `a + b` rounded down (a lower bound of the exact sum); NaN becomes −∞.
@@ -223,16 +313,23 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
                 if amax.iter().any(|v| !v.is_finite()) {
                     return vec![f64::NEG_INFINITY; rows];
                 }
-                let n = w.nrows(); // inner dimension of lam·W
-                let w_amax: Vec<f64> = w.rows().into_iter().map(|row| nonneg_dot_upper(row, &amax)).collect();
-                let sum_amax = amax.iter().fold(0.0f64, |s, &v| (s + v).next_up());
-                let underflow = (n as f64 * ETA * sum_amax).next_up() + ETA;
+                let n = w.nrows(); // inner dimension of lam·W and of lam·b
+                let amax = Array1::from(amax);
+                // q ≥ |W|·amax + |b| entry-wise
+                let wa = abs_matvec_upper(&w.mapv(f64::abs), &amax);
+                let q = Array1::from_iter(wa.iter().zip(b).map(|(&v, &bi)| add_up(v, bi.abs())));
+                // lq ≥ |lam|·(|W|·amax + |b|)
+                let lq = abs_matvec_upper(&lam.mapv(f64::abs), &q);
+                let sum_amax = amax.iter().fold(0.0f64, |s, &v| add_up(s, v));
+                // underflow: n·η per entry of lam·W (times Σ amax), and n·η for lam·b
+                let underflow = add_up(mul_up(n as f64 * ETA, add_up(sum_amax, 1.0)), ETA);
                 let g = gamma(n);
+                // fl(lam·b) is within γ_n·|lam|·|b| + n·η of lam·b; fl(lam·W) within
+                // γ_n·|lam|·|W| + n·η of lam·W, which costs γ_n·|lam|·|W|·amax on a.
+                let lam_b = lam.dot(b);
                 for r in 0..rows {
-                    let lr = lam.row(r);
-                    let lam_b = lower(lr.iter().zip(b).fold(Interval::ZERO, |s, (&c, &bi)| s + Interval::point(c) * Interval::point(bi)));
-                    let err = ((g * nonneg_dot_upper(lr, &w_amax)).next_up() + underflow).next_up();
-                    d[r] = add_down(add_down(d[r], lam_b), -err);
+                    let err = add_up(mul_up(g, lq[r]), underflow);
+                    d[r] = add_down(add_down(d[r], lam_b[r]), -err);
                 }
                 lam = lam.dot(w);
             }
@@ -269,11 +366,10 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
                             if !lp.is_finite() {
                                 lp = 0.0;
                             }
-                            // min of λ·relu(z) − λ'·z over z ∈ {l, 0, u}; relu(l) = 0, relu(u) = u.
-                            let lam_i = Interval::point(l);
-                            let lp_i = Interval::point(lp);
-                            let at_l = lower(Interval::ZERO - lp_i * Interval::point(lo));
-                            let at_u = lower(lam_i * Interval::point(hi) - lp_i * Interval::point(hi));
+                            // min of λ·relu(z) − λ'·z over z ∈ {l, 0, u}, each rounded
+                            // down: relu(l) = 0, relu(0) = 0, relu(u) = u.
+                            let at_l = mul_down(-lp, lo);
+                            let at_u = add_down(mul_down(l, hi), mul_down(-lp, hi));
                             offset = add_down(offset, at_l.min(at_u).min(0.0));
                             lam[[r, i]] = lp;
                         }
@@ -288,12 +384,41 @@ fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>)
             }
         }
     }
-    // Step 3: lam·v[stop] over the box of v[stop], in interval arithmetic.
+    // Step 3: lam·v[stop] over the box of v[stop].
     let box_ = &vals[stop];
+    if box_.iter().all(|x| x.is_bounded()) {
+        // Midpoint–radius: lam·x ≥ lam·m − |lam|·ρ for x ∈ m ± ρ, and fl(lam·m) is
+        // within γ_n·|lam|·|m| + n·η of lam·m.
+        let n = box_.len();
+        let m = Array1::from_iter(box_.iter().map(|x| x.mid()));
+        let rho = Array1::from_iter(box_.iter().map(|x| x.rad()));
+        let abs_lam = lam.mapv(f64::abs);
+        let c = lam.dot(&m);
+        let lm = abs_matvec_upper(&abs_lam, &m.mapv(f64::abs));
+        let lr = abs_matvec_upper(&abs_lam, &rho);
+        let g = gamma(n);
+        return (0..rows)
+            .map(|r| {
+                let slack = add_up(add_up(lr[r], mul_up(g, lm[r])), n as f64 * ETA);
+                add_down(d[r], add_down(c[r], -slack))
+            })
+            .collect();
+    }
+    // Some end is infinite: term by term, the lower end of each product rounded down.
     (0..rows)
         .map(|r| {
-            let s = lam.row(r).iter().zip(box_).fold(Interval::ZERO, |s, (&c, x)| s + x.scale(c));
-            let v = add_down(d[r], lower(s));
+            // lower bound of Σ c·[x]: the lower end of each term, rounded down
+            let s = lam.row(r).iter().zip(box_).fold(0.0f64, |s, (&c, x)| {
+                let t = if c > 0.0 {
+                    mul_down(c, x.lo())
+                } else if c < 0.0 {
+                    mul_down(c, x.hi())
+                } else {
+                    0.0
+                };
+                add_down(s, t)
+            });
+            let v = add_down(d[r], s);
             if v.is_nan() {
                 f64::NEG_INFINITY
             } else {
@@ -313,7 +438,9 @@ fn plus_minus_units(dim: usize, which: &[usize]) -> Array2<f64> {
     obj
 }
 
-fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -> OutputBounds {
+/// Symbolic bounds; intersected with `interval` (and with the forward interval bounds
+/// of the tightened chain) when given, else the raw backward-pass result.
+fn symbolic_bounds(net: &Network, input: &[Interval], interval: Option<&OutputBounds>) -> OutputBounds {
     let layers = net.layers();
     let mut vals: Vec<Vec<Interval>> = vec![input.to_vec()];
     for (k, layer) in layers.iter().enumerate() {
@@ -349,7 +476,10 @@ fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -
     let outputs: Vec<Interval> = (0..m)
         .map(|i| {
             let sym = Interval::new(lows[2 * i], -lows[2 * i + 1]);
-            tightest(&[sym, forward_out[i], interval.outputs[i]])
+            match interval {
+                Some(ib) => tightest(&[sym, forward_out[i], ib.outputs[i]]),
+                None => sym,
+            }
         })
         .collect();
     let mut diff = differences(&outputs);
@@ -357,7 +487,10 @@ fn symbolic_bounds(net: &Network, input: &[Interval], interval: &OutputBounds) -
         // Lower end from e_i − e_j; upper end from −(lower bound of e_j − e_i).
         let back = pairs.iter().position(|&p| p == (j, i)).expect("both orders are listed");
         let sym = Interval::new(lows[2 * m + t], -lows[2 * m + back]);
-        diff[i][j] = tightest(&[sym, diff[i][j], interval.diff[i][j]]);
+        diff[i][j] = match interval {
+            Some(ib) => tightest(&[sym, diff[i][j], ib.diff[i][j]]),
+            None => sym,
+        };
     }
     OutputBounds { outputs, diff }
 }

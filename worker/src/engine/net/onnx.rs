@@ -53,6 +53,8 @@ pub enum NetError {
 
 /// Most elements of one tensor or matrix the importer will allocate (128 MiB of f64).
 const MAX_ELEMENTS: usize = 1 << 24;
+/// Most matrix elements of one import in total (512 MiB of f64).
+const MAX_TOTAL_ELEMENTS: usize = 1 << 26;
 
 /// Decode an ONNX model and normalise it into a [`Network`].
 ///
@@ -367,6 +369,8 @@ struct Importer<'g> {
     producer: HashMap<&'g str, usize>,
     input_dim: usize,
     float32: bool,
+    /// Matrix elements allocated so far.
+    allocated: usize,
 }
 
 impl<'g> Importer<'g> {
@@ -440,7 +444,7 @@ impl<'g> Importer<'g> {
                 }
             }
         }
-        Ok(Importer { graph, values, producer, input_dim, float32 })
+        Ok(Importer { graph, values, producer, input_dim, float32, allocated: 0 })
     }
 
     /// Nodes the graph output depends on, in an order where producers come first.
@@ -608,6 +612,18 @@ impl<'g> Importer<'g> {
         }
     }
 
+    /// A zero matrix, or an error naming the node if it, or all matrices of the import
+    /// together, would be too large (a hostile model must not exhaust memory).
+    fn sized(&mut self, rows: usize, cols: usize, label: &str) -> Result<Array2<f64>, NetError> {
+        match rows.checked_mul(cols) {
+            Some(n) if n <= MAX_ELEMENTS && self.allocated + n <= MAX_TOTAL_ELEMENTS => {
+                self.allocated += n;
+                Ok(Array2::zeros((rows, cols)))
+            }
+            _ => Err(NetError::Invalid { node: label.into(), detail: format!("needs a {rows}×{cols} matrix: too large") }),
+        }
+    }
+
     fn dynamic(&self, node: &NodeProto, label: &str, k: usize) -> Result<Dyn, NetError> {
         match self.required(node, label, k)? {
             Value::Dyn(d) => Ok(d.clone()),
@@ -751,7 +767,7 @@ impl<'g> Importer<'g> {
                     return Err(mismatch(format!("input {:?} times weights '{}' {:?}", x.dims, c.name, c.dims)));
                 }
                 let rows: usize = lead.iter().product();
-                let w = sized(rows * n, rows * k, label)?;
+                let w = self.sized(rows * n, rows * k, label)?;
                 let mut w = w;
                 for r in 0..rows {
                     for kk in 0..k {
@@ -783,7 +799,7 @@ impl<'g> Importer<'g> {
                 if xk != k {
                     return Err(mismatch(format!("weights '{}' {:?} times input {:?}", c.name, c.dims, x.dims)));
                 }
-                let mut w = sized(m * n, k * n, label)?;
+                let mut w = self.sized(m * n, k * n, label)?;
                 for mm in 0..m {
                     for nn in 0..n {
                         for kk in 0..k {
@@ -847,7 +863,7 @@ impl<'g> Importer<'g> {
                 if k != k2 {
                     return Err(mismatch(format!("A {:?} and B '{}' {:?} do not chain", x.dims, bt.name, bt.dims)));
                 }
-                let mut w = sized(m * n, m * k, label)?;
+                let mut w = self.sized(m * n, m * k, label)?;
                 for i in 0..m {
                     for j in 0..n {
                         for kk in 0..k {
@@ -866,7 +882,7 @@ impl<'g> Importer<'g> {
                 if k != k2 {
                     return Err(mismatch(format!("A '{}' {:?} and B {:?} do not chain", at.name, at.dims, x.dims)));
                 }
-                let mut w = sized(m * n, k * n, label)?;
+                let mut w = self.sized(m * n, k * n, label)?;
                 for i in 0..m {
                     for j in 0..n {
                         for kk in 0..k {
@@ -935,13 +951,6 @@ fn with_dims(v: Value, dims: Vec<usize>) -> Value {
     }
 }
 
-/// A zero matrix, or an error naming the node if it would be too large.
-fn sized(rows: usize, cols: usize, label: &str) -> Result<Array2<f64>, NetError> {
-    match rows.checked_mul(cols) {
-        Some(n) if n <= MAX_ELEMENTS => Ok(Array2::zeros((rows, cols))),
-        _ => Err(NetError::Invalid { node: label.into(), detail: format!("needs a {rows}×{cols} matrix: too large") }),
-    }
-}
 
 /// `values` (shape `from`) broadcast to shape `to` by the standard's multidirectional
 /// (numpy) rule, when the result has shape `to` exactly; `None` otherwise.
@@ -1012,6 +1021,114 @@ mod tests {
         assert_eq!(exact_add(1.0, 1e-17), None);
         let (h, l) = split_mul(0.1, 3.0).unwrap();
         assert!(l != 0.0 && h == 0.1 * 3.0);
+    }
+
+    // Small models built directly from the schema types.
+    fn vi(name: &str, dims: &[i64]) -> ValueInfoProto {
+        ValueInfoProto {
+            name: name.into(),
+            r#type: Some(proto::TypeProto {
+                tensor_type: Some(proto::TypeProtoTensor {
+                    elem_type: data_type::DOUBLE,
+                    shape: Some(proto::TensorShapeProto {
+                        dim: dims
+                            .iter()
+                            .map(|&d| proto::Dimension { value: Some(proto::DimensionValue::DimValue(d)) })
+                            .collect(),
+                    }),
+                }),
+            }),
+        }
+    }
+
+    fn node(op: &str, name: &str, inputs: &[&str], out: &str, attribute: Vec<AttributeProto>) -> NodeProto {
+        NodeProto {
+            input: inputs.iter().map(|s| s.to_string()).collect(),
+            output: vec![out.into()],
+            name: name.into(),
+            op_type: op.into(),
+            domain: String::new(),
+            attribute,
+        }
+    }
+
+    fn encode(nodes: Vec<NodeProto>, inits: Vec<TensorProto>, in_dims: &[i64]) -> Vec<u8> {
+        let g = proto::GraphProto {
+            node: nodes,
+            name: "g".into(),
+            initializer: inits,
+            input: vec![vi("x", in_dims)],
+            output: vec![vi("y", &[])],
+        };
+        ModelProto { ir_version: 8, opset_import: vec![], producer_name: String::new(), graph: Some(g) }.encode_to_vec()
+    }
+
+    fn doubles(name: &str, dims: &[i64], v: &[f64]) -> TensorProto {
+        TensorProto {
+            dims: dims.to_vec(),
+            data_type: data_type::DOUBLE,
+            name: name.into(),
+            double_data: v.to_vec(),
+            ..Default::default()
+        }
+    }
+
+    #[test]
+    fn constant_floats_and_inexact_beta_are_exact() {
+        // y = x·W + beta·C with beta = float32(0.1) and C = 0.1 (a double): their product
+        // needs more than 53 bits, so it is kept as hi + lo in two exact bias steps.
+        let floats = AttributeProto { name: "value_floats".into(), r#type: attribute_type::FLOATS, floats: vec![2.0, -1.0], ..Default::default() };
+        let beta = AttributeProto { name: "beta".into(), r#type: attribute_type::FLOAT, f: 0.1, ..Default::default() };
+        let shape = AttributeProto { name: "value_ints".into(), r#type: attribute_type::INTS, ints: vec![2, 1], ..Default::default() };
+        let bytes = encode(
+            vec![
+                node("Constant", "wflat", &[], "wf", vec![floats]),
+                node("Constant", "wshape", &[], "ws", vec![shape]),
+                node("Reshape", "wr", &["wf", "ws"], "w", vec![]),
+                node("Gemm", "fc", &["x", "w", "c"], "y", vec![beta]),
+            ],
+            vec![doubles("c", &[1], &[0.1])],
+            &[1, 2],
+        );
+        let net = load_onnx(&bytes).unwrap();
+        assert!(net.is_float32(), "Constant value_floats are float32");
+        let y = net.eval(&[1.0, 1.0]);
+        let beta_c = (0.1f32 as f64) * 0.1; // the attribute is a float32
+        assert!((y[0] - (1.0 + beta_c)).abs() < 1e-15, "{y:?}");
+        assert_eq!(net.layers().len(), 2, "the bias is split in two exact steps: {:?}", net.layers());
+        let (crate::engine::net::Layer::Dense { b: hi, .. }, crate::engine::net::Layer::Dense { b: lo, .. }) =
+            (&net.layers()[0], &net.layers()[1])
+        else {
+            panic!("two dense layers expected");
+        };
+        // hi + lo is exactly beta·C: the FMA residual of the product (error-free transformation).
+        assert_eq!(hi[0], (0.1f32 as f64) * 0.1);
+        assert_eq!(lo[0], (0.1f32 as f64).mul_add(0.1, -hi[0]));
+        assert!(lo[0] != 0.0);
+    }
+
+    #[test]
+    fn computed_plus_computed_and_bad_shapes_are_rejected() {
+        let bytes = encode(vec![node("Relu", "r", &["x"], "h", vec![]), node("Add", "res", &["x", "h"], "y", vec![])], vec![], &[1, 3]);
+        let e = load_onnx(&bytes).unwrap_err().to_string();
+        assert!(e.contains("'res' (Add)") && e.contains("two computed values"), "{e}");
+        // A huge replicated Gemm (A of shape [8192, 1] with transA = 0) is refused, not allocated.
+        let bytes = encode(vec![node("Gemm", "big", &["x", "w"], "y", vec![])], vec![doubles("w", &[1, 4096], &vec![1.0; 4096])], &[8192, 1]);
+        let e = load_onnx(&bytes).unwrap_err().to_string();
+        assert!(e.contains("'big' (Gemm)") && e.contains("too large"), "{e}");
+        // Flatten with an axis beyond the rank.
+        let axis = AttributeProto { name: "axis".into(), r#type: attribute_type::INT, i: 5, ..Default::default() };
+        let bytes = encode(vec![node("Flatten", "fl", &["x"], "y", vec![axis])], vec![], &[1, 3]);
+        assert!(load_onnx(&bytes).unwrap_err().to_string().contains("'fl' (Flatten)"));
+        // Reshape to a size that does not match.
+        let ints = TensorProto { dims: vec![1], data_type: data_type::INT64, name: "s".into(), int64_data: vec![4], ..Default::default() };
+        let bytes = encode(vec![node("Reshape", "rs", &["x", "s"], "y", vec![])], vec![ints], &[1, 3]);
+        let e = load_onnx(&bytes).unwrap_err().to_string();
+        assert!(e.contains("'rs' (Reshape)") && e.contains("shape mismatch"), "{e}");
+        // Raw data of the wrong length names the tensor.
+        let t = TensorProto { dims: vec![3], data_type: data_type::DOUBLE, name: "short".into(), raw_data: vec![0; 16], ..Default::default() };
+        let bytes = encode(vec![node("Add", "a", &["x", "short"], "y", vec![])], vec![t], &[1, 3]);
+        assert!(load_onnx(&bytes).unwrap_err().to_string().contains("tensor 'short'"));
     }
 
     #[test]
