@@ -964,73 +964,44 @@ impl StateSet {
     }
 
     /// Test helper: whether `p` may lie within `margin` (per coordinate) of the set.
-    ///
-    /// Returns `false` only when a separating direction is *proved* (outward-rounded
-    /// interval evaluation of `d·(p − c)` and of the support `Σ_k |d·g_k| + Σ_i |d_i|e_i`).
-    /// Candidate directions are the coordinate axes and, for dimensions up to 4, every
-    /// facet normal of the zonotope (generalised cross products of `dim − 1`
-    /// generators, the error radii and the margin counted as axis generators), which
-    /// makes the test exact for full-dimensional zonotopes. For higher dimensions only
-    /// the axes and the generators' own directions are tried (then it is a weaker,
-    /// still one-sided check).
+    /// See [`Membership`] for the guarantee; build one with [`StateSet::membership`]
+    /// to test many points against the same set.
     pub fn contains_point_with_margin(&self, p: &[f64], margin: f64) -> bool {
+        self.membership(margin).contains(p)
+    }
+
+    /// [`StateSet::contains_point_with_margin`] with no margin.
+    pub fn contains_point(&self, p: &[f64]) -> bool {
+        self.contains_point_with_margin(p, 0.0)
+    }
+
+    /// A membership test of this set enlarged by `margin` per coordinate.
+    pub fn membership(&self, margin: f64) -> Membership {
         let n = self.dim();
-        if p.len() != n || self.is_undefined() {
-            return false;
-        }
         let mut cols: BTreeMap<usize, Vec<f64>> = BTreeMap::new();
         for (i, a) in self.comps.iter().enumerate() {
             for &(s, g) in &a.terms {
                 cols.entry(s).or_insert_with(|| vec![0.0; n])[i] = g;
             }
         }
-        let mut gens: Vec<Vec<f64>> = cols.into_values().collect();
-        let mut axis_rad = vec![0.0f64; n];
+        let gens: Vec<Vec<f64>> = cols.into_values().collect();
+        let axis_rad: Vec<f64> = self.comps.iter().map(|a| add_up(a.e, margin.max(0.0))).collect();
+        let mut all = gens.clone();
         for i in 0..n {
-            axis_rad[i] = add_up(self.comps[i].e, margin.max(0.0));
             let mut g = vec![0.0; n];
             g[i] = 1.0;
-            gens.push(g);
+            all.push(g);
         }
-        let separated = |d: &[f64]| -> bool {
-            let mut lhs = Interval::ZERO;
-            let mut support = Interval::ZERO;
-            for i in 0..n {
-                let di = Interval::point(d[i]);
-                lhs = lhs + di * (Interval::point(p[i]) - Interval::point(self.comps[i].c));
-                support = support + di.abs() * Interval::point(axis_rad[i]);
-            }
-            // Σ_k |d·g_k| over the symbol generators.
-            let mut by_sym: BTreeMap<usize, Interval> = BTreeMap::new();
-            for (i, a) in self.comps.iter().enumerate() {
-                for &(s, g) in &a.terms {
-                    let v = by_sym.entry(s).or_insert(Interval::ZERO);
-                    *v = *v + Interval::point(d[i]) * Interval::point(g);
-                }
-            }
-            for v in by_sym.values() {
-                support = support + v.abs();
-            }
-            lhs.abs().lo() > support.hi()
-        };
-        for g in &gens {
-            if separated(g) {
-                return false;
-            }
-        }
-        if (2..=4).contains(&n) {
-            let m = gens.len();
-            let k = n - 1;
-            if m < k {
-                return true;
-            }
+        let mut normals = all.clone();
+        if (2..=4).contains(&n) && all.len() >= n - 1 {
+            let (m, k) = (all.len(), n - 1);
             // All k-subsets of the generators, in lexicographic order.
             let mut idx: Vec<usize> = (0..k).collect();
             loop {
-                let vecs: Vec<&Vec<f64>> = idx.iter().map(|&j| &gens[j]).collect();
+                let vecs: Vec<&Vec<f64>> = idx.iter().map(|&j| &all[j]).collect();
                 let d = cross(&vecs, n);
-                if d.iter().any(|v| *v != 0.0) && separated(&d) {
-                    return false;
+                if d.iter().any(|v| *v != 0.0) {
+                    normals.push(d);
                 }
                 let Some(pos) = (0..k).rev().find(|&i| idx[i] < m - k + i) else { break };
                 idx[pos] += 1;
@@ -1039,12 +1010,89 @@ impl StateSet {
                 }
             }
         }
-        true
+        // Support in each direction, in f64 (screening) and outward-rounded (proof).
+        let supports = normals
+            .iter()
+            .map(|d| {
+                let mut sf = 0.0f64;
+                let mut mag = 0.0f64;
+                let mut si = Interval::ZERO;
+                for i in 0..n {
+                    sf += (d[i] * axis_rad[i]).abs();
+                    mag += (d[i] * axis_rad[i]).abs();
+                    si = si + Interval::point(d[i]).abs() * Interval::point(axis_rad[i]);
+                }
+                for g in &gens {
+                    let mut v = 0.0;
+                    let mut vi = Interval::ZERO;
+                    for i in 0..n {
+                        v += d[i] * g[i];
+                        mag += (d[i] * g[i]).abs();
+                        vi = vi + Interval::point(d[i]) * Interval::point(g[i]);
+                    }
+                    sf += v.abs();
+                    si = si + vi.abs();
+                }
+                (sf, mag, si.hi())
+            })
+            .collect();
+        Membership {
+            center: self.comps.iter().map(|a| a.c).collect(),
+            normals,
+            supports,
+            defined: !self.is_undefined(),
+        }
     }
+}
 
-    /// [`StateSet::contains_point_with_margin`] with no margin.
-    pub fn contains_point(&self, p: &[f64]) -> bool {
-        self.contains_point_with_margin(p, 0.0)
+/// A precomputed membership test of a zonotope (a test helper, not a bound).
+///
+/// [`Membership::contains`] returns `false` only when a separating direction `d` is
+/// *proved*: `|d·(p − c)| > Σ_k |d·g_k| + Σ_i |d_i|·(e_i + margin)` in outward-rounded
+/// arithmetic. Candidate directions are the coordinate axes, the generators and, for
+/// dimensions 2 to 4, every facet normal of the zonotope (generalised cross products of
+/// `dim − 1` generators, error radii and margin counted as axis generators), which makes
+/// the test exact for full-dimensional zonotopes of those dimensions. For higher
+/// dimensions it is a weaker one-sided check (a point reported inside may be outside).
+pub struct Membership {
+    center: Vec<f64>,
+    normals: Vec<Vec<f64>>,
+    /// Per normal: f64 support, sum of magnitudes (for the screening error bound), and
+    /// an outward-rounded upper bound of the support.
+    supports: Vec<(f64, f64, f64)>,
+    defined: bool,
+}
+
+impl Membership {
+    pub fn contains(&self, p: &[f64]) -> bool {
+        let n = self.center.len();
+        if !self.defined || p.len() != n {
+            return false;
+        }
+        let diff: Vec<Interval> = (0..n).map(|i| Interval::point(p[i]) - Interval::point(self.center[i])).collect();
+        for (d, &(sf, mag, s_hi)) in self.normals.iter().zip(&self.supports) {
+            // Screening in f64: the slack is computed with an error below 1e-13 of the
+            // magnitudes involved (dot-product bound γ_k·Σ|terms|, k < 1000), so a slack
+            // above 1e-10 of them proves this direction does not separate.
+            let mut lhs = 0.0f64;
+            let mut m = mag;
+            for i in 0..n {
+                let t = d[i] * (p[i] - self.center[i]);
+                lhs += t;
+                m += t.abs();
+            }
+            if sf - lhs.abs() > 1e-10 * m {
+                continue;
+            }
+            let mut li = Interval::ZERO;
+            for i in 0..n {
+                li = li + Interval::point(d[i]) * diff[i];
+            }
+            if li.abs().lo() > s_hi {
+                return false;
+            }
+        }
+        true
     }
 }
 
