@@ -9,6 +9,9 @@ use tessera_worker::engine::interval::Interval;
 use tessera_worker::engine::plant::Plant;
 use tessera_worker::engine::spec::EngineOptions;
 
+/// Runs per case; the fastest is reported.
+const REPEATS: usize = 5;
+
 struct Case {
     name: &'static str,
     states: &'static [&'static str],
@@ -59,30 +62,40 @@ fn main() {
     ];
     let opts = EngineOptions::default();
     println!("options: taylor_order {}, substeps {}, generators_per_dim {}", opts.taylor_order, opts.substeps, opts.generators_per_dim);
-    println!("{:<40} {:>12} {:>10} {:>10} {:>10} {:>10} {:>10}", "system", "us/period", "w(0)", "w(10)", "w(20)", "w(50)", "gens");
+    println!("{:<40} {:>12} {:>10} {:>10} {:>10} {:>10} {:>10}", "system", "us/period*", "w(0)", "w(10)", "w(20)", "w(50)", "gens");
+    println!("* fastest of {REPEATS} runs of 50 periods; w(k) = largest hull width after k periods; gens = generators at the end");
     for c in &cases {
         let plant = Plant::from_text(c.states, c.inputs, c.dists, c.rhs).expect("plant");
         let widths_at = [0usize, 10, 20, 50];
         let mut widths = Vec::new();
-        let mut set = StateSet::from_box(&c.x0);
-        let w0 = set.to_box().iter().map(|i| i.width()).fold(0.0, f64::max);
-        widths.push(w0);
-        let start = Instant::now();
+        let mut best = f64::INFINITY;
         let mut ok = true;
-        for k in 1..=50 {
-            match plant.integrate_period(&set, &c.u, &c.w, c.period, &opts) {
-                Ok(flow) => set = flow.end,
-                Err(e) => {
-                    println!("{}: period {k}: {e}", c.name);
-                    ok = false;
-                    break;
+        let mut set = StateSet::from_box(&c.x0);
+        // The machine is shared: repeat and keep the fastest run.
+        for _rep in 0..REPEATS {
+            widths.clear();
+            set = StateSet::from_box(&c.x0);
+            widths.push(set.to_box().iter().map(|i| i.width()).fold(0.0, f64::max));
+            let start = Instant::now();
+            for k in 1..=50 {
+                match plant.integrate_period(&set, &c.u, &c.w, c.period, &opts) {
+                    Ok(flow) => set = flow.end,
+                    Err(e) => {
+                        println!("{}: period {k}: {e}", c.name);
+                        ok = false;
+                        break;
+                    }
+                }
+                if widths_at.contains(&k) {
+                    widths.push(set.to_box().iter().map(|i| i.width()).fold(0.0, f64::max));
                 }
             }
-            if widths_at.contains(&k) {
-                widths.push(set.to_box().iter().map(|i| i.width()).fold(0.0, f64::max));
+            best = best.min(start.elapsed().as_secs_f64() * 1e6 / 50.0);
+            if !ok {
+                break;
             }
         }
-        let per = start.elapsed().as_secs_f64() * 1e6 / 50.0;
+        let per = best;
         if ok {
             println!(
                 "{:<40} {:>12.1} {:>10.3e} {:>10.3e} {:>10.3e} {:>10.3e} {:>10}",

@@ -80,7 +80,7 @@ fn two_sum(a: f64, b: f64) -> (f64, f64) {
 fn two_prod(a: f64, b: f64) -> (f64, f64) {
     let p = a * b;
     let err = a.mul_add(b, -p).abs();
-    if p.abs() < 1e-290 && p != 0.0 || (err != 0.0 && err < 1e-290) {
+    if (p.abs() < 1e-290 && a != 0.0 && b != 0.0) || (err != 0.0 && err < 1e-290) {
         (p, add_up(err, 1e-300))
     } else {
         (p, err)
@@ -99,6 +99,16 @@ pub(crate) fn mid_rad(i: Interval) -> Option<(f64, f64)> {
         Some((m, r))
     } else {
         None
+    }
+}
+
+/// A point of a bounded interval, or NaN when it is undefined or unbounded (unlike
+/// [`Interval::mid`], never panics on NaN ends).
+fn safe_mid(i: Interval) -> f64 {
+    if i.is_undefined() || !i.is_bounded() {
+        f64::NAN
+    } else {
+        i.mid()
     }
 }
 
@@ -416,7 +426,7 @@ impl Affine {
         }
         let m = Interval::point(x.mid());
         let slope = df(x);
-        let alpha = df(m).mid();
+        let alpha = safe_mid(df(m));
         if slope.is_undefined() || !slope.is_bounded() || !alpha.is_finite() {
             return Affine::from_interval(plain);
         }
@@ -628,8 +638,8 @@ impl Affine {
         }
         let (my, mx) = (Interval::point(yr.mid()), Interval::point(xr.mid()));
         let r2m = mx.sqr() + my.sqr();
-        let ay = (mx / r2m).mid();
-        let ax = (-my / r2m).mid();
+        let ay = safe_mid(mx / r2m);
+        let ax = safe_mid(-my / r2m);
         let r2 = xr.sqr() + yr.sqr();
         let dy = xr / r2;
         let dx = -yr / r2;
