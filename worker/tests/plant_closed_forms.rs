@@ -135,3 +135,28 @@ fn kink_crossed_by_every_trajectory() {
     check_trajectories(&flows, period, MARGIN, pts.len(), &exact, "kink");
     report("kink", &flows);
 }
+
+#[test]
+fn stiff_decay_forces_smaller_sub_steps() {
+    // dx/dt = −50 x over a period of 0.5 s: the a-priori test fails at the initial
+    // sub-step 0.125 s (h·50 > 1), so the integrator must halve the step. Closed form
+    // x(t) = x0 e^{−50 t} (textbook).
+    let plant = Plant::from_text(&["x"], &[], &[], &["-50 * x"]).unwrap();
+    let opts = EngineOptions::default();
+    let x0 = [Interval::new(1.0, 1.2)];
+    let period = 0.5;
+    let flows = run_periods(&plant, &x0, &[], &[], period, 3, &opts);
+    assert!(flows[0].tube.len() > opts.substeps as usize, "{} sub-steps", flows[0].tube.len());
+    assert!(flows[0].tube.len() <= opts.max_substeps as usize);
+    // The pieces tile the period in order.
+    let mut t = 0.0;
+    for p in &flows[0].tube {
+        assert_eq!(p.t.lo(), t);
+        t = p.t.hi();
+    }
+    assert_eq!(t, period);
+    let mut rng = Rng(1);
+    let pts = samples(&x0, 3, &mut rng);
+    check_trajectories(&flows, period, MARGIN, pts.len(), &|j, t| vec![pts[j][0] * (-50.0 * t).exp()], "stiff decay");
+    println!("stiff decay: {} sub-steps in the first period, end width {:.3e}", flows[0].tube.len(), max_width(&flows[0].end));
+}

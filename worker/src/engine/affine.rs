@@ -335,17 +335,49 @@ impl Affine {
         if o.terms.is_empty() && o.e == 0.0 {
             return self.scale(o.c);
         }
-        // Linear part: cx·y + cy·x − cx·cy, computed as cx·(y − cy) + cy·(x − cx) + cx·cy.
-        let lin_y = Affine { c: 0.0, terms: o.terms.clone(), e: 0.0 }.scale(self.c);
-        let lin_x = Affine { c: 0.0, terms: self.terms.clone(), e: 0.0 }.scale(o.c);
-        let (cc, ecc) = two_prod(self.c, o.c);
-        let mut r = lin_x.add(&lin_y);
-        if r.is_undefined() {
-            return r;
+        // Linear part cx·(y − cy) + cy·(x − cx) + cx·cy, merged in one pass.
+        let (cx, cy) = (self.c, o.c);
+        let (cc, mut e) = two_prod(cx, cy);
+        let mut terms = Vec::with_capacity(self.terms.len() + o.terms.len());
+        let (mut i, mut j) = (0, 0);
+        while i < self.terms.len() || j < o.terms.len() {
+            let a = self.terms.get(i).copied();
+            let b = o.terms.get(j).copied();
+            let (sym, g) = match (a, b) {
+                (Some((sa, ga)), Some((sb, gb))) if sa == sb => {
+                    let (p1, r1) = two_prod(cy, ga);
+                    let (p2, r2) = two_prod(cx, gb);
+                    let (g, r3) = two_sum(p1, p2);
+                    e = add_up(e, add_up(r1, add_up(r2, r3)));
+                    i += 1;
+                    j += 1;
+                    (sa, g)
+                }
+                (Some((sa, ga)), Some((sb, _))) if sa < sb => {
+                    let (p, r) = two_prod(cy, ga);
+                    e = add_up(e, r);
+                    i += 1;
+                    (sa, p)
+                }
+                (Some((sa, ga)), None) => {
+                    let (p, r) = two_prod(cy, ga);
+                    e = add_up(e, r);
+                    i += 1;
+                    (sa, p)
+                }
+                (_, Some((sb, gb))) => {
+                    let (p, r) = two_prod(cx, gb);
+                    e = add_up(e, r);
+                    j += 1;
+                    (sb, p)
+                }
+                (None, None) => unreachable!(),
+            };
+            if g != 0.0 {
+                terms.push((sym, g));
+            }
         }
-        let (c, e1) = two_sum(r.c, cc);
-        r.c = c;
-        r.e = add_up(r.e, add_up(e1, ecc));
+        let mut r = Affine { c: cc, terms, e };
         // Error radii times the centres.
         r.e = add_up(r.e, add_up(mul_up(self.c.abs(), o.e), mul_up(o.c.abs(), self.e)));
         // Quadratic part.
