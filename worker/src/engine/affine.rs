@@ -201,6 +201,7 @@ impl Affine {
         &self.terms
     }
 
+    /// Whether the form is undefined (it then proves nothing; its range is undefined).
     pub fn is_undefined(&self) -> bool {
         !(self.c.is_finite() && self.e.is_finite())
     }
@@ -233,6 +234,7 @@ impl Affine {
         }
     }
 
+    /// `−x`, exact.
     pub fn neg(&self) -> Affine {
         Affine { c: -self.c, terms: self.terms.iter().map(|&(s, g)| (s, -g)).collect(), e: self.e }
     }
@@ -277,10 +279,12 @@ impl Affine {
         Affine { c, terms, e }.normalize()
     }
 
+    /// `x + y`; coefficient roundings (measured by TwoSum) go into the error radius.
     pub fn add(&self, o: &Affine) -> Affine {
         self.add_signed(o, 1.0)
     }
 
+    /// `x − y`; as [`Affine::add`].
     pub fn sub(&self, o: &Affine) -> Affine {
         self.add_signed(o, -1.0)
     }
@@ -552,10 +556,13 @@ impl Affine {
         Affine::prefer(self.linear_plus(alpha, Interval::new(gb.lo(), ga.hi())), plain)
     }
 
+    /// `x / y = x · (1/y)`; undefined when the range of `y` holds 0.
     pub fn div(&self, o: &Affine) -> Affine {
         self.mul(&o.recip())
     }
 
+    /// Mean-value form (see the module documentation); likewise cos, tan, atan, tanh.
+    /// `tan` is undefined when a pole may lie in the range.
     pub fn sin(&self) -> Affine {
         self.mean_value(|x| x.sin(), |x| x.cos())
     }
@@ -675,7 +682,7 @@ impl Affine {
         let r2 = xr.sqr() + yr.sqr();
         let dy = xr / r2;
         let dx = -yr / r2;
-        if !(ay.is_finite() && ax.is_finite()) || !dy.is_bounded() || !dx.is_bounded() {
+        if !(ay.is_finite() && ax.is_finite() && dy.is_bounded() && dx.is_bounded()) {
             return Affine::from_interval(plain);
         }
         let (iay, iax) = (Interval::point(ay), Interval::point(ax));
@@ -1175,9 +1182,9 @@ fn det(m: &mut [Vec<f64>]) -> f64 {
         d *= m[col][col];
         for r in col + 1..k {
             let f = m[r][col] / m[col][col];
-            for c in col..k {
-                let v = m[col][c];
-                m[r][c] -= f * v;
+            let pivot_row = m[col].clone();
+            for (x, v) in m[r].iter_mut().zip(&pivot_row).skip(col) {
+                *x -= f * v;
             }
         }
     }
@@ -1279,6 +1286,21 @@ mod tests {
         let ok = set.eval_affine(&parse("sqrt(x + 1)", &names).unwrap());
         assert!(!ok.is_undefined());
         assert!(ok.range().contains(0.0) && ok.range().contains(2f64.sqrt()));
+    }
+
+    #[test]
+    fn enclose_bounds_a_constraint_over_a_rotated_set() {
+        // The set {(a + b, a − b)} for a, b ∈ [−1, 1]: x + y = 2a ∈ [−2, 2] exactly,
+        // while the box hull [−2, 2]² would give [−4, 4].
+        let a = Affine::from_parts(0.0, &[(0, 1.0), (1, 1.0)], 0.0);
+        let b = Affine::from_parts(0.0, &[(0, 1.0), (1, -1.0)], 0.0);
+        let set = StateSet::from_forms(vec![a, b], 2, 2);
+        let e = parse("x + y", &names).unwrap();
+        assert_eq!(set.enclose(&e), Interval::new(-2.0, 2.0));
+        assert_eq!(set.eval_affine(&e).coeff(0), 2.0);
+        assert_eq!(set.eval_affine(&e).coeff(1), 0.0);
+        // An undefined expression stays undefined.
+        assert!(set.enclose(&parse("log(x)", &names).unwrap()).is_undefined());
     }
 
     #[test]

@@ -338,7 +338,9 @@ impl Plant {
         order: usize,
     ) -> Result<(StateSet, TubePiece), StepFail> {
         let n = self.n;
-        if h.is_undefined() || !(h.lo() > 0.0) {
+        // Written so that a NaN duration is rejected too.
+        let positive = h.lo() > 0.0;
+        if h.is_undefined() || !positive {
             return Err(StepFail::Undefined("step duration".into()));
         }
         let hmax = h.hi();
