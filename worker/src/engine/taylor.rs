@@ -56,6 +56,19 @@ pub trait Coef: Clone {
     fn select(p: &Self, q: &Self, lt: &Self, gt: &Self) -> Self;
     /// A sound enclosure of the coefficient's values.
     fn range(&self) -> Interval;
+    /// Whether this is the exact constant 0 (products with it are skipped).
+    fn is_zero(&self) -> bool;
+    fn is_undefined(&self) -> bool;
+}
+
+/// `a·b`, skipped (None) when one factor is the exact constant 0 and the other is
+/// defined; an undefined factor always poisons, as in interval arithmetic.
+fn product_term<C: Coef>(a: &C, b: &C) -> Option<C> {
+    if (a.is_zero() && !b.is_undefined()) || (b.is_zero() && !a.is_undefined()) {
+        None
+    } else {
+        Some(a.mul(b))
+    }
 }
 
 impl Coef for Interval {
@@ -103,6 +116,12 @@ impl Coef for Interval {
     }
     fn range(&self) -> Interval {
         *self
+    }
+    fn is_zero(&self) -> bool {
+        *self == Interval::ZERO
+    }
+    fn is_undefined(&self) -> bool {
+        Interval::is_undefined(self)
     }
 }
 
@@ -152,6 +171,12 @@ impl Coef for Affine {
     fn range(&self) -> Interval {
         Affine::range(self)
     }
+    fn is_zero(&self) -> bool {
+        self.center() == 0.0 && self.err() == 0.0 && self.terms().is_empty()
+    }
+    fn is_undefined(&self) -> bool {
+        Affine::is_undefined(self)
+    }
 }
 
 /// The [`Domain`] of truncated series with `len` coefficients over `C`.
@@ -179,13 +204,16 @@ impl<C: Coef> Series<C> {
         }
     }
 
-    /// Cauchy product, truncated.
+    /// Cauchy product, truncated (exact-zero coefficients are skipped: constants and
+    /// parameters have zero higher coefficients).
     fn product(&self, a: &[C], b: &[C]) -> Vec<C> {
         (0..self.len)
             .map(|k| {
-                let mut s = a[0].mul(&b[k]);
-                for j in 1..=k {
-                    s = s.add(&a[j].mul(&b[k - j]));
+                let mut s = C::zero();
+                for j in 0..=k {
+                    if let Some(p) = product_term(&a[j], &b[k - j]) {
+                        s = s.add(&p);
+                    }
                 }
                 s
             })
@@ -198,7 +226,9 @@ impl<C: Coef> Series<C> {
         for k in 0..self.len {
             let mut s = a[k].clone();
             for j in 1..=k {
-                s = s.sub(&b[j].mul(&c[k - j]));
+                if let Some(p) = product_term(&b[j], &c[k - j]) {
+                    s = s.sub(&p);
+                }
             }
             c.push(s.div(&b[0]));
         }
@@ -207,9 +237,11 @@ impl<C: Coef> Series<C> {
 
     /// `Σ_{j=1..k} j·a_j·q_{k−j}` — the common sum of `c' = a'·q` recurrences.
     fn weighted(a: &[C], q: &[C], k: usize) -> C {
-        let mut s = a[1].mul(&q[k - 1]);
-        for j in 2..=k {
-            s = s.add(&a[j].scale(j as f64).mul(&q[k - j]));
+        let mut s = C::zero();
+        for j in 1..=k {
+            if let Some(p) = product_term(&a[j], &q[k - j]) {
+                s = s.add(&p.scale(j as f64));
+            }
         }
         s
     }
@@ -566,6 +598,16 @@ mod tests {
             // truncation ~ |x_7| t^7 ≈ 1e-9 at most for these mild functions
             assert!((poly - x).abs() < 1e-8, "{src}: {poly} vs {x}");
         }
+    }
+
+    #[test]
+    fn undefined_is_never_skipped() {
+        // 0 · log(x) with x ≤ 0 is undefined in interval arithmetic; the series must be too.
+        let f = vec![parse("0 * log(x) + 1", &names).unwrap()];
+        let x = vec![Interval::new(-1.0, 1.0)];
+        assert_eq!(ode_coefficients(&f, &x, &[], 3).unwrap_err(), TaylorFault::Undefined);
+        let xa = vec![Affine::from_interval(Interval::new(-1.0, 1.0))];
+        assert_eq!(ode_coefficients(&f, &xa, &[], 3).unwrap_err(), TaylorFault::Undefined);
     }
 
     #[test]
