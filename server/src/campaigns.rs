@@ -474,6 +474,9 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
         "server_version": env!("CARGO_PKG_VERSION"),
         "engine_versions": engines,
         "generated_at_ms": now_ms(),
+        "generated_at": iso8601(now_ms()),
+        "created_at": campaign["created_at_ms"].as_i64().map(iso8601),
+        "finished_at": campaign["finished_at_ms"].as_i64().map(iso8601),
         "horizon_periods": doc["horizon_periods"],
         "envelope": doc["envelope"],
         "split": doc["refinement"]["split"],
@@ -484,8 +487,43 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
 
 fn ms_text(v: &Value) -> String {
     match v.as_i64() {
-        Some(ms) => format!("{ms} ms since the Unix epoch"),
+        Some(ms) => iso8601(ms),
         None => "—".into(),
+    }
+}
+
+/// UTC time `YYYY-MM-DDThh:mm:ss.sssZ` of `ms` milliseconds since the Unix epoch
+/// (proleptic Gregorian calendar; days-to-civil conversion as in common practice).
+pub fn iso8601(ms: i64) -> String {
+    let days = ms.div_euclid(86_400_000);
+    let rem = ms.rem_euclid(86_400_000);
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z.rem_euclid(146_097);
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let d = doy - (153 * mp + 2) / 5 + 1;
+    let m = if mp < 10 { mp + 3 } else { mp - 9 };
+    let y = yoe + era * 400 + if m <= 2 { 1 } else { 0 };
+    format!(
+        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}.{:03}Z",
+        rem / 3_600_000,
+        rem / 60_000 % 60,
+        rem / 1000 % 60,
+        rem % 1000
+    )
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn iso_times() {
+        // Expected values from Python's datetime (fromisoformat(...).timestamp()).
+        assert_eq!(super::iso8601(0), "1970-01-01T00:00:00.000Z");
+        assert_eq!(super::iso8601(951_782_400_000), "2000-02-29T00:00:00.000Z");
+        assert_eq!(super::iso8601(1_796_174_780_123), "2026-12-02T01:26:20.123Z");
+        assert_eq!(super::iso8601(946_684_799_999), "1999-12-31T23:59:59.999Z");
     }
 }
 
