@@ -110,6 +110,7 @@ pub fn routes() -> Vec<Route> {
         r(Method::GET, "/api/v1/campaigns/{id}/report.md", Read, "Campaign report (Markdown)", &[], B::None, "text/markdown; charset=utf-8", || get(report_md)),
         r(Method::POST, "/api/v1/leases", Work, "Lease a batch of cells", &[], B::Json("LeaseRequest"), JSON, || post(lease)),
         r(Method::POST, "/api/v1/leases/extend", Work, "Extend leases", &[], B::Json("ExtendRequest"), JSON, || post(extend)),
+        r(Method::POST, "/api/v1/leases/release", Work, "Give leases back unfinished (no attempt counted)", &[], B::Json("ExtendRequest"), JSON, || post(release)),
         r(Method::POST, "/api/v1/results", Work, "Submit a batch of results", &[], B::Json("SubmitRequest"), JSON, || post(submit)),
         r(Method::POST, "/api/v1/admin/tokens", Admin, "Create an access token (shown once)", &[], B::Json("TokenRequest"), JSON, || post(create_token)),
         r(Method::GET, "/api/v1/admin/campaigns/{id}/tiling", Admin, "Check that the leaves tile the envelope exactly once", &[], B::None, JSON, || get(tiling)),
@@ -439,6 +440,14 @@ async fn extend(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendReques
     }
     let items = leases::extend(&st.store, st.limits(), &req.lease_ids).await?;
     Ok(Json(json!({"items": items, "lease_seconds": st.config.lease_seconds})))
+}
+
+async fn release(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendRequest>) -> ApiResult<Json<Value>> {
+    if req.lease_ids.len() > 10_000 {
+        return Err(ApiError::unprocessable("limit", "at most 10000 lease ids per request").field("lease_ids"));
+    }
+    let items = leases::release(&st.store, st.limits(), &req.lease_ids).await?;
+    Ok(Json(json!({"items": items})))
 }
 
 /// Body of `POST /api/v1/results`.

@@ -184,7 +184,7 @@ async fn reclaim_expired_in(
 }
 
 /// End leases without a result. `expired` counts as a failed attempt; `withdrawn`
-/// (campaign cancelled) does not.
+/// (campaign cancelled) and `released` (worker stopping) do not.
 async fn end_leases(
     store: &Store,
     tx: &mut Transaction<'static, Sqlite>,
@@ -237,6 +237,45 @@ async fn end_leases(
         q.execute(&mut **tx).await?;
     }
     Ok(())
+}
+
+/// Give leases back unfinished (a worker stopping): the cells return to `pending`
+/// without counting a failed attempt. Per lease: `released`, or why it is not held
+/// (`completed`, `expired`, `withdrawn`, `released`, `unknown_lease`).
+pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ExtendItem>> {
+    let mut w = store.write().await?;
+    let mut deltas = Deltas::default();
+    let mut ends = Vec::new();
+    for chunk in lease_ids.chunks(CHUNK) {
+        let sql = format!(
+            "SELECT rowid, id, campaign_id, depth, attempts, lease_id FROM cells WHERE status = 'leased' AND lease_id IN ({})",
+            vec!["?"; chunk.len()].join(", ")
+        );
+        let mut q = sqlx::query(&sql);
+        for l in chunk {
+            q = q.bind(l.as_str());
+        }
+        for r in q.fetch_all(&mut *w.tx).await? {
+            ends.push(Ending {
+                rowid: r.try_get(0)?,
+                cell_id: r.try_get(1)?,
+                campaign_id: r.try_get(2)?,
+                depth: r.try_get::<i64, _>(3)? as u32,
+                attempts: r.try_get(4)?,
+                lease_id: r.try_get::<Option<String>, _>(5)?.unwrap_or_default(),
+            });
+        }
+    }
+    let released: HashSet<String> = ends.iter().map(|e| e.lease_id.clone()).collect();
+    end_leases(store, &mut w.tx, limits, now_ms(), ends, "released", &mut deltas).await?;
+    deltas.apply(&mut w.tx).await?;
+    let mut out = Vec::with_capacity(lease_ids.len());
+    for l in lease_ids {
+        let status = if released.contains(l) { "released" } else { ended_status(&mut w.tx, l).await? };
+        out.push(ExtendItem { lease_id: l.clone(), status: status.into(), expires_at_ms: None });
+    }
+    w.commit().await?;
+    Ok(out)
 }
 
 /// Withdraw every lease of a campaign (at cancel): the cells go back to `pending`,
@@ -324,7 +363,11 @@ async fn ended_status(tx: &mut Transaction<'static, Sqlite>, lease_id: &str) -> 
         .fetch_optional(&mut **tx)
         .await?;
     if let Some(r) = ended {
-        return Ok(if r == "withdrawn" { "withdrawn" } else { "expired" });
+        return Ok(match r.as_str() {
+            "withdrawn" => "withdrawn",
+            "released" => "released",
+            _ => "expired",
+        });
     }
     let held: Option<i64> = sqlx::query_scalar("SELECT 1 FROM cells WHERE lease_id = ? AND status = 'leased'")
         .bind(lease_id)
@@ -526,6 +569,7 @@ pub async fn submit(
                 "duplicate" => "a result for this lease was already accepted; this one is ignored",
                 "expired" => "the lease expired before the result arrived; the cell was returned to the queue",
                 "withdrawn" => "the campaign was cancelled; the result is ignored",
+                "released" => "the worker released this lease; the cell went back to the queue",
                 _ => "no such lease",
             };
             answers[i] = Some(reject(it, status, detail));

@@ -16,6 +16,21 @@ struct Cli {
 enum Command {
     /// Serve the API.
     Serve(Config),
+    /// The whole job on its embedded default: a server on a SQLite file in a working
+    /// folder, local worker processes and the demo campaigns.
+    Demo(tessera_server::demo::DemoOptions),
+    /// Run a worker in this process (used by `demo`; `tessera-worker run` is the same).
+    #[command(hide = true)]
+    Worker {
+        #[arg(long, env = "TESSERA_SERVER")]
+        server: String,
+        #[arg(long, env = "TESSERA_TOKEN", hide_env_values = true)]
+        token: String,
+        #[arg(long, default_value_t = 1)]
+        threads: usize,
+        #[arg(long, default_value = "worker")]
+        name: String,
+    },
     /// Access tokens.
     Token {
         #[command(subcommand)]
@@ -55,13 +70,26 @@ async fn run(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Serve(config) => {
             let server = tessera_server::start(config).await?;
+            let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())?;
             tokio::select! {
-                r = tokio::signal::ctrl_c() => {
-                    r?;
-                    tracing::info!("shutting down");
-                    server.stop().await?;
-                }
+                r = tokio::signal::ctrl_c() => { r?; }
+                _ = term.recv() => {}
             }
+            tracing::info!("shutting down");
+            server.stop().await?;
+            Ok(())
+        }
+        Command::Demo(opts) => tessera_server::demo::run(opts).await,
+        Command::Worker { server, token, threads, name } => {
+            use std::sync::atomic::AtomicBool;
+            use std::sync::Arc;
+            let stop = Arc::new(AtomicBool::new(false));
+            for sig in [signal_hook::consts::SIGTERM, signal_hook::consts::SIGINT] {
+                signal_hook::flag::register(sig, stop.clone())?;
+            }
+            let opts = tessera_worker::client::run::RunOptions { server, token, threads, name, max_cells: None, idle_exit: None };
+            let s = tokio::task::spawn_blocking(move || tessera_worker::client::run::run(opts, stop)).await??;
+            println!("worker done: {} cells in {:.1} s, {} leases released", s.cells, s.seconds, s.released);
             Ok(())
         }
         Command::Token { command: TokenCommand::Create { role, db, label } } => {

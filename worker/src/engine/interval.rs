@@ -120,7 +120,9 @@ impl Interval {
     }
     /// A point inside the interval (not a bound; use only to choose, never to prove).
     pub fn mid(&self) -> f64 {
-        if self.lo == f64::NEG_INFINITY && self.hi == f64::INFINITY {
+        if self.is_undefined() {
+            f64::NAN
+        } else if self.lo == f64::NEG_INFINITY && self.hi == f64::INFINITY {
             0.0
         } else if self.lo == f64::NEG_INFINITY {
             f64::MIN
