@@ -1,0 +1,180 @@
+//! End to end: a real server and two real worker processes on loopback run a small
+//! campaign of the lander demo (low depth) to the end. Checked: the fractions add up to
+//! exactly 1 and the leaves tile the envelope; a worker killed with SIGKILL in the
+//! middle leaves no cell behind (its leases expire and are re-issued); every
+//! counterexample of the report replays with `tessera-worker replay`; the `tessera`
+//! client submits, gates and reports; SIGTERM stops a worker with status 0.
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+/// The workspace's binaries sit next to the test's `deps` folder.
+fn bin(name: &str) -> PathBuf {
+    let exe = std::env::current_exe().expect("test executable path");
+    let dir = exe.parent().and_then(|d| d.parent()).expect("target profile folder");
+    let p = dir.join(name);
+    assert!(p.exists(), "{} is missing: run the workspace's tests (`cargo test --workspace`) so it gets built", p.display());
+    p
+}
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()
+}
+
+fn get(url: &str, token: &str) -> serde_json::Value {
+    ureq::get(url).set("Authorization", &format!("Bearer {token}")).call().unwrap().into_json().unwrap()
+}
+
+fn term(c: &Child) {
+    // SAFETY: kill(2) on our own child.
+    unsafe {
+        libc::kill(c.id() as libc::pid_t, libc::SIGTERM);
+    }
+}
+
+struct Guard(Vec<Child>);
+impl Drop for Guard {
+    fn drop(&mut self) {
+        for c in &mut self.0 {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+}
+
+fn write_small_lander(dir: &Path) -> PathBuf {
+    let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo/lander");
+    std::fs::copy(demo.join("lander.onnx"), dir.join("lander.onnx")).unwrap();
+    let mut spec: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(demo.join("spec.json")).unwrap()).unwrap();
+    spec["refinement"]["max_depth"] = 3.into();
+    spec["horizon_periods"] = 12.into();
+    spec["engine"] = serde_json::json!({"node_budget": 200, "time_budget_s": 3.0, "falsify_samples": 8, "sim_steps": 20});
+    let path = dir.join("spec.json");
+    std::fs::write(&path, serde_json::to_string_pretty(&spec).unwrap()).unwrap();
+    path
+}
+
+#[test]
+fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    let spec_path = write_small_lander(dir);
+    let port = free_port();
+    let url = format!("http://127.0.0.1:{port}");
+    let db = dir.join("tessera.sqlite");
+    let admin_file = dir.join("admin.token");
+    let mut guard = Guard(Vec::new());
+
+    let server_log = std::fs::File::create(dir.join("server.log")).unwrap();
+    guard.0.push(
+        Command::new(bin("tessera-server"))
+            .args(["serve", "--listen", &format!("127.0.0.1:{port}"), "--lease-seconds", "3", "--sweep-seconds", "1"])
+            .arg("--db")
+            .arg(&db)
+            .arg("--bootstrap-token-file")
+            .arg(&admin_file)
+            .stdout(Stdio::null())
+            .stderr(server_log)
+            .spawn()
+            .unwrap(),
+    );
+    let t0 = Instant::now();
+    while ureq::get(&format!("{url}/healthz")).call().is_err() {
+        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    let admin = std::fs::read_to_string(&admin_file).unwrap().trim().to_string();
+
+    // The client uploads the model, rewrites the reference and creates the campaign.
+    let out = Command::new(bin("tessera"))
+        .args(["--server", &url, "submit"])
+        .arg(&spec_path)
+        .env("TESSERA_TOKEN", &admin)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "submit failed: {}", String::from_utf8_lossy(&out.stderr));
+    let id = String::from_utf8(out.stdout).unwrap().trim().to_string();
+
+    let tok = Command::new(bin("tessera-server")).args(["token", "create", "--role", "worker", "--db"]).arg(&db).output().unwrap();
+    assert!(tok.status.success());
+    let worker_token = String::from_utf8(tok.stdout).unwrap().trim().lines().last().unwrap().to_string();
+
+    let spawn_worker = |name: &str| -> Child {
+        Command::new(bin("tessera-worker"))
+            .args(["run", "--server", &url, "--threads", "1", "--name", name])
+            .env("TESSERA_TOKEN", &worker_token)
+            .stdout(Stdio::piped())
+            .stderr(std::fs::File::create(dir.join(format!("{name}.log"))).unwrap())
+            .spawn()
+            .unwrap()
+    };
+    let doomed = spawn_worker("doomed");
+    let steady = spawn_worker("steady");
+    guard.0.push(doomed);
+    guard.0.push(steady);
+
+    // Kill the first worker once the campaign is under way.
+    let cov_url = format!("{url}/api/v1/campaigns/{id}/coverage");
+    let t0 = Instant::now();
+    loop {
+        let cov = get(&cov_url, &admin);
+        if cov["results"].as_i64().unwrap_or(0) >= 2 || cov["state"] != "running" {
+            break;
+        }
+        assert!(t0.elapsed() < Duration::from_secs(240), "no progress: {cov}");
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    guard.0[1].kill().unwrap(); // SIGKILL
+    guard.0[1].wait().unwrap();
+
+    // The client's gate waits for the end; min-safe 0 always passes a finished campaign.
+    let gate = Command::new(bin("tessera"))
+        .args(["--server", &url, "gate", &id, "--min-safe", "0", "--interval", "0.5"])
+        .env("TESSERA_TOKEN", &admin)
+        .output()
+        .unwrap();
+    assert_eq!(gate.status.code(), Some(0), "gate: {}{}", String::from_utf8_lossy(&gate.stdout), String::from_utf8_lossy(&gate.stderr));
+
+    let cov = get(&cov_url, &admin);
+    assert_eq!(cov["state"], "done");
+    let total = cov["total_volume"].as_i64().unwrap();
+    let mut sum = 0;
+    for (status, v) in cov["statuses"].as_object().unwrap() {
+        let vol = v["volume"].as_i64().unwrap();
+        if status == "pending" || status == "leased" {
+            assert_eq!(vol, 0, "cells left {status} after the campaign ended");
+        }
+        sum += vol;
+    }
+    assert_eq!(sum, total, "the fractions must add up to exactly 1");
+    let tiling = get(&format!("{url}/api/v1/admin/campaigns/{id}/tiling"), &admin);
+    assert_eq!(tiling["ok"], true, "tiling check: {tiling}");
+
+    // Every counterexample replays.
+    let report = get(&format!("{url}/api/v1/campaigns/{id}/report"), &admin);
+    let cxs = report["counterexamples"].as_array().unwrap();
+    for (k, cx) in cxs.iter().enumerate() {
+        let f = dir.join(format!("cx-{k}.json"));
+        std::fs::write(&f, serde_json::to_string(&serde_json::json!({"counterexample": cx["counterexample"]})).unwrap()).unwrap();
+        let r = Command::new(bin("tessera-worker")).arg("replay").arg(&f).arg("--spec").arg(&spec_path).output().unwrap();
+        assert!(r.status.success(), "counterexample {k} does not replay: {}", String::from_utf8_lossy(&r.stdout));
+    }
+    println!("campaign done: {} results, {} counterexamples, coverage {}", cov["results"], cxs.len(), cov["statuses"]);
+
+    let md = Command::new(bin("tessera"))
+        .args(["--server", &url, "report", &id, "--format", "md"])
+        .env("TESSERA_TOKEN", &admin)
+        .output()
+        .unwrap();
+    assert!(md.status.success());
+    assert!(String::from_utf8_lossy(&md.stdout).contains("not a certification"));
+
+    // SIGTERM: the surviving worker stops with status 0.
+    term(&guard.0[2]);
+    let st = guard.0[2].wait().unwrap();
+    assert!(st.success(), "worker exit status {st:?}");
+    term(&guard.0[0]);
+    let st = guard.0[0].wait().unwrap();
+    assert!(st.success(), "server exit status {st:?}");
+}
