@@ -170,7 +170,7 @@ async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
         let t = Instant::now();
         let items: Vec<SubmitItem> = cells
             .iter()
-            .map(|c| SubmitItem { lease_id: c.lease_id.clone(), result: verdict_for(&c.cell_id), elapsed_ms: None })
+            .map(|c| SubmitItem { lease_id: c.lease_id.clone(), cell_id: Some(c.cell_id.clone()), result: verdict_for(&c.cell_id), elapsed_ms: None })
             .collect();
         let (_, stats) =
             leases::submit(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
