@@ -63,7 +63,10 @@ CREATE TABLE cells (
 CREATE INDEX cells_queue ON cells (campaign_id, status, depth);
 CREATE UNIQUE INDEX cells_lease ON cells (lease_id) WHERE lease_id IS NOT NULL;
 CREATE INDEX cells_lease_expiry ON cells (lease_expires_at) WHERE status = 'leased';
-CREATE INDEX cells_parent ON cells (parent_id);
+-- No index on parent_id: it is one more B-tree write per new cell, and nothing looks
+-- cells up by parent (the tiling check reads them all). Cell ids never change and the
+-- API deletes nothing; a future campaign deletion must add this index first, or each
+-- deleted cell's foreign-key check scans the table.
 
 CREATE TABLE results (
     id              TEXT PRIMARY KEY,      -- UUID v4
@@ -78,7 +81,8 @@ CREATE TABLE results (
     leased_at       INTEGER,
     received_at     INTEGER NOT NULL
 );
-CREATE INDEX results_kind ON results (campaign_id, kind);
+-- Counterexamples are read by campaign; other kinds need no index.
+CREATE INDEX results_unsafe ON results (campaign_id) WHERE kind = 'unsafe';
 
 CREATE TABLE tokens (
     id          TEXT PRIMARY KEY,          -- UUID v4

@@ -162,18 +162,28 @@ async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
     let limits = leases::QueueLimits { lease_ms: 120_000, max_attempts: 3, max_cells_per_campaign: u64::MAX / 4 };
     let t0 = Instant::now();
     let mut n = 0u64;
+    let (mut t_lease, mut t_submit) = (0.0, 0.0);
     while t0.elapsed() < Duration::from_secs(seconds) {
+        let t = Instant::now();
         let (cells, _) = leases::lease(&store, limits, batch, "raw", None).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        t_lease += t.elapsed().as_secs_f64();
+        let t = Instant::now();
         let items: Vec<SubmitItem> = cells
             .iter()
-            .map(|c| SubmitItem { lease_id: c.lease_id.clone(), result: verdict_for(&c.cell_id), elapsed_ms: None })
+            .map(|c| SubmitItem { lease_id: c.lease_id.clone(), cell_id: Some(c.cell_id.clone()), result: verdict_for(&c.cell_id), elapsed_ms: None })
             .collect();
         let (_, stats) =
             leases::submit(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         n += stats.accepted;
+        t_submit += t.elapsed().as_secs_f64();
     }
     let elapsed = t0.elapsed().as_secs_f64();
-    println!("raw   (no HTTP)     batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s)", n as f64 / elapsed);
+    println!(
+        "raw   (no HTTP)     batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s; lease {:.0}%, submit {:.0}% of the time)",
+        n as f64 / elapsed,
+        100.0 * t_lease / elapsed,
+        100.0 * t_submit / elapsed
+    );
     store.close().await;
     Ok(())
 }

@@ -128,7 +128,22 @@ pub fn router(state: AppState) -> Router {
         .fallback(not_found)
         .method_not_allowed_fallback(method_not_allowed)
         .layer(DefaultBodyLimit::max(MAX_JSON_BYTES))
+        .layer(middleware::from_fn(log_request))
         .with_state(state)
+}
+
+/// One log line per request: debug for success, info for 4xx, warn for 5xx.
+async fn log_request(req: Request, next: Next) -> Response {
+    let (method, path) = (req.method().clone(), req.uri().path().to_string());
+    let t0 = Instant::now();
+    let resp = next.run(req).await;
+    let (status, ms) = (resp.status().as_u16(), t0.elapsed().as_secs_f64() * 1e3);
+    match status {
+        500.. => tracing::warn!(%method, %path, status, ms, "request"),
+        400.. => tracing::info!(%method, %path, status, ms, "request"),
+        _ => tracing::debug!(%method, %path, status, ms, "request"),
+    }
+    resp
 }
 
 async fn not_found() -> ApiError {

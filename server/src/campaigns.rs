@@ -515,17 +515,6 @@ pub fn iso8601(ms: i64) -> String {
     )
 }
 
-#[cfg(test)]
-mod tests {
-    #[test]
-    fn iso_times() {
-        // Expected values from Python's datetime (fromisoformat(...).timestamp()).
-        assert_eq!(super::iso8601(0), "1970-01-01T00:00:00.000Z");
-        assert_eq!(super::iso8601(951_782_400_000), "2000-02-29T00:00:00.000Z");
-        assert_eq!(super::iso8601(1_796_174_780_123), "2026-12-02T01:26:20.123Z");
-        assert_eq!(super::iso8601(946_684_799_999), "1999-12-31T23:59:59.999Z");
-    }
-}
 
 /// The report as Markdown.
 pub fn report_markdown(r: &Value) -> String {
@@ -701,4 +690,16 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
         "problem_count": n_problems,
         "problems": problems,
     }))
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn iso_times() {
+        // Expected values from Python's datetime (fromisoformat(...).timestamp()).
+        assert_eq!(super::iso8601(0), "1970-01-01T00:00:00.000Z");
+        assert_eq!(super::iso8601(951_782_400_000), "2000-02-29T00:00:00.000Z");
+        assert_eq!(super::iso8601(1_796_174_780_123), "2026-12-02T01:26:20.123Z");
+        assert_eq!(super::iso8601(946_684_799_999), "1999-12-31T23:59:59.999Z");
+    }
 }

@@ -383,6 +383,9 @@ async fn ended_status(tx: &mut Transaction<'static, Sqlite>, lease_id: &str) -> 
 #[serde(deny_unknown_fields)]
 pub struct SubmitItem {
     pub lease_id: String,
+    /// Optional; when given it must be the leased cell's id (a cross-check).
+    #[serde(default)]
+    pub cell_id: Option<String>,
     /// The engine's verdict JSON (`{"verdict": …, "split_hint": …, …}`), or
     /// `{"error": "text"}` for a failed attempt. Stored as given.
     pub result: serde_json::Value,
@@ -575,6 +578,10 @@ pub async fn submit(
             answers[i] = Some(reject(it, status, detail));
             continue;
         };
+        if it.cell_id.as_ref().is_some_and(|c| *c != h.id) {
+            answers[i] = Some(reject(it, "invalid", &format!("this lease is for cell {}, not the cell_id given", h.id)));
+            continue;
+        }
         if h.expires_at < now {
             answers[i] = Some(reject(
                 it,

@@ -70,6 +70,7 @@ pub fn document(routes: &[Route]) -> Value {
                     "worker": {"type": "string"}, "engine_version": {"type": "string"},
                     "results": {"type": "array", "items": {"type": "object", "required": ["lease_id", "result"], "properties": {
                         "lease_id": {"type": "string"},
+                        "cell_id": {"type": "string", "description": "optional cross-check"},
                         "result": {"type": "object", "description": "verdict JSON {verdict, reason, split_hint, counterexample, stats} or {error}"},
                         "elapsed_ms": {"type": "number"}}}}}},
                 "TokenRequest": {"type": "object", "required": ["role"], "properties": {

@@ -93,12 +93,12 @@ pub fn encode_box(cell: &[[f64; 2]]) -> Vec<u8> {
 
 /// Decode [`encode_box`]'s output; `None` if the length is not a multiple of 16.
 pub fn decode_box(bytes: &[u8]) -> Option<CellBox> {
-    if bytes.len() % 16 != 0 {
+    let chunks = bytes.chunks_exact(16);
+    if !chunks.remainder().is_empty() {
         return None;
     }
     Some(
-        bytes
-            .chunks_exact(16)
+        chunks
             .map(|c| {
                 let lo = f64::from_le_bytes(c[0..8].try_into().unwrap_or([0; 8]));
                 let hi = f64::from_le_bytes(c[8..16].try_into().unwrap_or([0; 8]));

@@ -104,7 +104,10 @@ impl Store {
             .synchronous(SqliteSynchronous::Normal)
             .foreign_keys(true)
             .busy_timeout(Duration::from_secs(10))
-            .statement_cache_capacity(400);
+            .statement_cache_capacity(400)
+            // Random UUID keys touch pages all over the indexes: keep them in memory.
+            .pragma("cache_size", "-65536")
+            .pragma("temp_store", "memory");
         let pool = SqlitePoolOptions::new().max_connections(8).connect_with(opts).await?;
         sqlx::migrate!("../migrations").run(&pool).await?;
         Ok(Arc::new(Store {

@@ -310,7 +310,10 @@ async fn repeated_errors_fail_the_cell_with_its_text() {
     let a = submit(&ts, &[(l.clone(), json!({"verdict": "maybe"}))]).await;
     assert_eq!(a[0]["status"], "invalid");
     assert!(a[0]["detail"].as_str().unwrap().contains("verdict"));
-    let a = submit(&ts, &[(l, json!({"verdict": "safe"}))]).await;
+    // A cell_id that does not match the lease is refused, and the lease stays valid.
+    let a = submit_raw(&ts, vec![json!({"lease_id": l, "cell_id": "other", "result": {"verdict": "safe"}})]).await;
+    assert_eq!(a[0]["status"], "invalid");
+    let a = submit_raw(&ts, vec![json!({"lease_id": l, "cell_id": c[0]["cell_id"], "result": {"verdict": "safe"}})]).await;
     assert_eq!(a[0]["status"], "accepted");
     ts.server.stop().await.unwrap();
 }

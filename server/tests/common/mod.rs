@@ -162,8 +162,11 @@ pub async fn lease(ts: &TestServer, max: u32) -> Vec<Value> {
 
 /// Submit `(lease_id, result)` pairs; returns the per-item answers.
 pub async fn submit(ts: &TestServer, items: &[(String, Value)]) -> Vec<Value> {
-    let results: Vec<Value> =
-        items.iter().map(|(l, r)| json!({"lease_id": l, "result": r, "elapsed_ms": 0.5})).collect();
+    submit_raw(ts, items.iter().map(|(l, r)| json!({"lease_id": l, "result": r, "elapsed_ms": 0.5})).collect()).await
+}
+
+/// Submit result items as given.
+pub async fn submit_raw(ts: &TestServer, results: Vec<Value>) -> Vec<Value> {
     let r = ts
         .client
         .post("/api/v1/results", ts.token(Role::Worker), &json!({"worker": "test", "engine_version": "scripted-1", "results": results}))
