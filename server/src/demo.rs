@@ -106,6 +106,9 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         }
         let depth = spec["refinement"]["max_depth"].as_u64().unwrap_or(8).min(opts.max_depth as u64);
         spec["refinement"]["max_depth"] = depth.into();
+        // Map the unsafe region instead of stopping at the first counterexample of a
+        // large cell: a coverage map is what the demo is for.
+        spec["refinement"]["refine_unsafe"] = true.into();
         demo_engine_knobs(&mut spec);
         let body = serde_json::to_vec(&spec)?;
         let c = campaigns::create(
@@ -113,7 +116,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
             config.max_depth,
             config.max_cells_per_campaign,
             &body,
-            CreateOptions { priority: 0, initial_depth: 0 },
+            CreateOptions { priority: 0, initial_depth: depth.min(2) as u32 },
         )
         .await
         .map_err(|e| anyhow::anyhow!("{name}: {}", e.detail))?;
