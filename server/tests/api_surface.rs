@@ -34,7 +34,10 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
         | ("GET", "/api/v1/campaigns/{id}/counterexamples")
         | ("GET", "/api/v1/campaigns/{id}/report")
         | ("GET", "/api/v1/campaigns/{id}/report.md") => READ,
-        ("POST", "/api/v1/leases") | ("POST", "/api/v1/leases/extend") | ("POST", "/api/v1/results") => WORK,
+        ("POST", "/api/v1/leases")
+        | ("POST", "/api/v1/leases/extend")
+        | ("POST", "/api/v1/leases/release")
+        | ("POST", "/api/v1/results") => WORK,
         ("POST", "/api/v1/admin/tokens") | ("GET", "/api/v1/admin/campaigns/{id}/tiling") => ADMIN,
         _ => return None,
     })
@@ -48,7 +51,7 @@ fn body_for(method: &str, path: &str, spec: &Value) -> Option<Vec<u8>> {
         "/api/v1/models" => tessera_server::model_check::testing::tiny_model(1, 2, "matrix"),
         "/api/v1/campaigns" => spec.to_string().into_bytes(),
         "/api/v1/leases" => json!({"max": 1}).to_string().into_bytes(),
-        "/api/v1/leases/extend" => json!({"lease_ids": []}).to_string().into_bytes(),
+        "/api/v1/leases/extend" | "/api/v1/leases/release" => json!({"lease_ids": []}).to_string().into_bytes(),
         "/api/v1/results" => json!({"results": []}).to_string().into_bytes(),
         "/api/v1/admin/tokens" => json!({"role": "viewer"}).to_string().into_bytes(),
         _ => b"{}".to_vec(),
