@@ -86,7 +86,7 @@ pub fn routes() -> Vec<Route> {
              make: fn() -> MethodRouter<AppState>| Route { method, path, access, summary, query, body, produces, make };
     vec![
         r(Method::GET, "/healthz", Public, "Liveness and database check", &[], B::None, JSON, || get(healthz)),
-        r(Method::GET, "/metrics", Read, "Prometheus text metrics", &[], B::None, "text/plain; version=0.0.4", || get(metrics)),
+        r(Method::GET, "/metrics", Public, "Prometheus text metrics (no token, so a scraper can read it)", &[], B::None, "text/plain; version=0.0.4", || get(metrics)),
         r(Method::GET, "/api/v1/openapi.json", Public, "This API's OpenAPI 3 document", &[], B::None, JSON, || get(openapi_doc)),
         r(Method::POST, "/api/v1/models", Submit, "Upload an ONNX model (raw body, at most 16 MiB); returns its sha256", &[], B::Binary, JSON,
             || post(upload_model).layer(DefaultBodyLimit::max(MAX_MODEL_BYTES))),

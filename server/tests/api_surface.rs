@@ -18,8 +18,8 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
     const ADMIN: &[&str] = &["admin"];
     const PUBLIC: &[&str] = &[];
     Some(match (method, path) {
-        ("GET", "/healthz") | ("GET", "/api/v1/openapi.json") => PUBLIC,
-        ("GET", "/metrics") => READ,
+        // /metrics is public so that a Prometheus scraper needs no token.
+        ("GET", "/healthz") | ("GET", "/api/v1/openapi.json") | ("GET", "/metrics") => PUBLIC,
         ("POST", "/api/v1/models") => SUBMIT,
         ("GET", "/api/v1/models/{sha256}") => READ_WORK,
         ("GET", "/api/v1/campaigns") => READ,

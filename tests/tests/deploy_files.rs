@@ -13,7 +13,7 @@
 //!   `scaleTargetRef`) follow the Kubernetes API reference; the apiVersions are the
 //!   stable ones as of Kubernetes 1.23+, from memory.
 //! - The command-line contract (`CONTRACT` below) is the interface agreed for
-//!   `tessera-server serve` and `tessera-worker run`; the ignored launch test
+//!   `tessera-server serve` and `tessera-worker run`; the launch test
 //!   (`deployed_command_lines_start_a_real_server_and_worker`) runs the real binaries
 //!   with the invocations extracted here.
 //!
@@ -2169,7 +2169,6 @@ fn expand(word: &str, vars: &BTreeMap<String, String>) -> String {
 /// path are moved to loopback and a temp dir), checks /healthz and /metrics, then
 /// stops the worker with SIGTERM and expects exit 0.
 #[test]
-#[ignore = "needs the worker loop; enabled at merge"]
 fn deployed_command_lines_start_a_real_server_and_worker() {
     let tmp = tempfile::tempdir().unwrap();
     let port = std::net::TcpListener::bind("127.0.0.1:0")
