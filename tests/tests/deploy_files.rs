@@ -1759,7 +1759,7 @@ fn wait_exit(child: &mut std::process::Child) -> std::process::ExitStatus {
 fn slurm_script_forwards_sigterm_and_waits_for_the_worker() {
     let tmp = tempfile::tempdir().unwrap();
     let mut child = sbatch_command(tmp.path())
-        .env("TESSERA_SERVER", "http://server.example:8750")
+        .env("TESSERA_SERVER", "http://server.example:8470")
         .env("TESSERA_TOKEN", "placeholder-token")
         .env("SLURM_CPUS_PER_TASK", "4")
         .stdout(std::process::Stdio::null())
@@ -1769,7 +1769,7 @@ fn slurm_script_forwards_sigterm_and_waits_for_the_worker() {
     let started = wait_for(&log, "start");
     assert!(
         started.contains(
-            "start run server=http://server.example:8750 token=placeholder-token threads=4"
+            "start run server=http://server.example:8470 token=placeholder-token threads=4"
         ),
         "worker started as {started:?}"
     );
@@ -1794,7 +1794,7 @@ fn slurm_script_refuses_a_token_file_others_can_read() {
     use std::os::unix::fs::PermissionsExt;
     let tmp = tempfile::tempdir().unwrap();
     let env_file = tmp.path().join("worker.env");
-    std::fs::write(&env_file, "TESSERA_SERVER=http://s:8750\nTESSERA_TOKEN=t\n").unwrap();
+    std::fs::write(&env_file, "TESSERA_SERVER=http://s:8470\nTESSERA_TOKEN=t\n").unwrap();
     std::fs::set_permissions(&env_file, std::fs::Permissions::from_mode(0o644)).unwrap();
     let out = sbatch_command(tmp.path())
         .env("WORKER_ENV_FILE", &env_file)
@@ -1817,7 +1817,7 @@ fn slurm_script_refuses_a_token_file_others_can_read() {
         .unwrap();
     let started = wait_for(&tmp.path().join("log"), "start");
     assert!(
-        started.contains("server=http://s:8750 token=t threads=1"),
+        started.contains("server=http://s:8470 token=t threads=1"),
         "worker started as {started:?}"
     );
     Command::new("kill")
@@ -2008,7 +2008,7 @@ fn kubernetes_checks_reject_broken_manifests() {
     assert_has_error(&e, "must equal the --listen port");
     let e = kube_errors_after(|d| {
         container_mut(doc_mut(d, "StatefulSet", "tessera-server"), 0)["args"] =
-            yaml("['--listen', '0.0.0.0:8750', '--db', '/data/tessera.sqlite']");
+            yaml("['--listen', '0.0.0.0:8470', '--db', '/data/tessera.sqlite']");
     });
     assert_has_error(&e, "is not a mount of a volumeClaimTemplate");
     let e = kube_errors_after(|d| {
@@ -2023,7 +2023,7 @@ fn kubernetes_checks_reject_broken_manifests() {
     assert_has_error(&e, "lacks resources.requests.cpu");
     let e = kube_errors_after(|d| {
         let env = &mut container_mut(doc_mut(d, "Deployment", "tessera-worker"), 0)["env"];
-        env.as_sequence_mut().unwrap()[0]["value"] = yaml("http://tessera:8750");
+        env.as_sequence_mut().unwrap()[0]["value"] = yaml("http://tessera:8470");
     });
     assert_has_error(&e, "is not a Service name and port");
     // A YAML syntax error is reported with the file.
