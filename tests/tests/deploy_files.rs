@@ -2228,7 +2228,9 @@ fn deployed_command_lines_start_a_real_server_and_worker() {
         .envs(&wvars)
         .spawn()
         .unwrap();
-    std::thread::sleep(std::time::Duration::from_secs(1));
+    // Give the worker time to install its signal handlers even on a loaded machine: a
+    // SIGTERM before that would end it by the default action, not by a graceful stop.
+    std::thread::sleep(std::time::Duration::from_secs(3));
     let alive = worker.try_wait().unwrap().is_none();
     Command::new("kill")
         .args(["-TERM", &worker.id().to_string()])
