@@ -161,7 +161,7 @@ G0 = 9.80665
 class Lander:
     name = "lander"
     period = 0.15  # s
-    horizon = 30  # periods: 4.5 s
+    horizon = 20  # periods: 3 s
     # Thrust acceleration of each command, m/s^2 (net vertical acceleration = a - G0).
     commands = [("cut", 4.0), ("low", 8.3), ("hold", 10.3), ("brake", 11.8), ("full", 13.0)]
     gust = 0.3  # m/s^2, vertical gust bound

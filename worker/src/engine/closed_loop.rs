@@ -8,7 +8,9 @@
 //! on [kT, (k+1)T]; with latency 1 those of c_{k−1}.
 
 use super::interval::Interval;
-use super::net::{self, Network, OutputBounds};
+use super::affine::Affine;
+use super::net::{self, Layer, Network, OutputBounds};
+use ndarray::{Array1, Array2};
 use super::plant::Plant;
 use super::spec::{BoundsMethod, Decision, Spec};
 use std::collections::BTreeMap;
@@ -122,6 +124,63 @@ impl ClosedLoop {
     /// Sound bounds on the outputs of the network chosen after `prev`.
     pub fn bound_outputs(&self, prev: usize, input: &[Interval], method: BoundsMethod) -> OutputBounds {
         net::output_bounds(self.network_after(prev), input, method)
+    }
+
+    /// Sound bounds on the outputs of the network chosen after `prev`, given the
+    /// observations as affine forms over the set's noise symbols (noise not yet
+    /// added). The normalisation and the forms are folded into an exact first affine
+    /// layer over the unit box of the symbols (plus one symbol per observation for its
+    /// error radius and noise), so symbolic bounds keep the correlations between
+    /// observations that a box of observations would lose.
+    pub fn bound_outputs_affine(&self, prev: usize, obs: &[Affine], method: BoundsMethod) -> OutputBounds {
+        let spec = &self.spec;
+        let fallback = || {
+            let boxes: Vec<Interval> = obs.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
+            self.bound_outputs(prev, &self.network_input(&boxes), method)
+        };
+        if obs.iter().any(|f| f.is_undefined()) {
+            return fallback();
+        }
+        // Symbols used by any observation, in a dense order.
+        let mut syms: Vec<usize> = obs.iter().flat_map(|f| f.terms().iter().map(|t| t.0)).collect();
+        syms.sort_unstable();
+        syms.dedup();
+        let n_obs = obs.len();
+        let width = syms.len() + n_obs;
+        if width > 256 {
+            return fallback();
+        }
+        let mut w = Array2::<f64>::zeros((n_obs, width));
+        let mut b = Array1::<f64>::zeros(n_obs);
+        for (j, f) in obs.iter().enumerate() {
+            // input_j = (c + Σ g ε + [−e, e] + noise − offset) / scale
+            let scale = Interval::point(spec.scale[j]);
+            let noise = spec.observations[j].noise;
+            let centre = (Interval::point(f.center()) + Interval::point(noise.mid()) - Interval::point(spec.offset[j])) / scale;
+            // Everything not carried exactly by the stored weights goes into the radius
+            // of observation j's own symbol: the error radius, the noise radius, and the
+            // rounding of every stored coefficient.
+            let mut radius = (Interval::point(f.err()) + Interval::point(noise.rad())) / scale;
+            radius = radius + Interval::point(centre.rad());
+            b[j] = centre.mid();
+            for &(s, g) in f.terms() {
+                let k = syms.binary_search(&s).expect("symbol collected above");
+                let q = Interval::point(g) / scale;
+                w[[j, k]] = q.mid();
+                radius = radius + Interval::point(q.rad());
+            }
+            w[[j, syms.len() + j]] = radius.hi();
+        }
+        let net = self.network_after(prev);
+        let mut layers = vec![Layer::Dense { w, b }];
+        layers.extend(net.layers().iter().cloned());
+        match Network::new(width, layers, net.is_float32()) {
+            Ok(composite) => {
+                let unit = vec![Interval::new(-1.0, 1.0); width];
+                net::output_bounds(&composite, &unit, method)
+            }
+            Err(_) => fallback(),
+        }
     }
 
     /// The inputs (plant inputs) applied during a period, given the command decided in

@@ -148,7 +148,10 @@ pub fn prove_traced(
                 BoundsMethod::Symbolic => &[BoundsMethod::Symbolic],
             };
             for m in methods {
-                let b = cl.bound_outputs(br.prev, &input, *m);
+                let b = match opts.set {
+                    SetKind::Affine => cl.bound_outputs_affine(br.prev, &obs_forms, *m),
+                    SetKind::Box => cl.bound_outputs(br.prev, &input, *m),
+                };
                 choices = possible_commands(&b, spec.decision);
                 if choices.len() == 1 {
                     break;
@@ -225,9 +228,11 @@ const DECISION_PIECES: usize = 16;
 /// Commands possible over a box of states (observations evaluated with intervals).
 fn choices_on_box(cl: &ClosedLoop, b: &[Interval], prev: usize) -> Vec<usize> {
     let spec = &cl.spec;
-    let obs: Vec<Interval> = spec.observations.iter().map(|o| o.expr.eval_interval(b) + o.noise).collect();
-    let input = cl.network_input(&obs);
-    let bounds = cl.bound_outputs(prev, &input, BoundsMethod::Symbolic);
+    // Observations as affine forms over the piece (one symbol per state), so the
+    // network bounds see how the observations move together.
+    let piece = StateSet::from_box(b);
+    let forms: Vec<Affine> = spec.observations.iter().map(|o| piece.eval_affine(&o.expr)).collect();
+    let bounds = cl.bound_outputs_affine(prev, &forms, BoundsMethod::Symbolic);
     possible_commands(&bounds, spec.decision)
 }
 
