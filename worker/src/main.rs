@@ -97,6 +97,11 @@ fn parse_method(s: &str) -> Result<BoundsMethod, String> {
 }
 
 fn main() -> ExitCode {
+    // Output piped into `head` and closed: end quietly, as command-line tools do.
+    // SAFETY: resetting a signal's disposition to its default at start-up.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let cli = Cli::parse();
     match cli.cmd {
         Cmd::Validate { spec, json } => validate(&spec, json),

@@ -67,6 +67,10 @@ enum Cmd {
 }
 
 fn main() -> ExitCode {
+    // SAFETY: resetting SIGPIPE to its default at start-up, so `tessera report | head` ends quietly.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let cli = Cli::parse();
     let api = Api::new(&cli.server, &cli.token);
     let r = match cli.cmd {
