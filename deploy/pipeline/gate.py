@@ -28,9 +28,10 @@ MODEL_SHA_FIELD = "sha256"  # in the answer to an upload
 MODEL_REF_PREFIX = "sha256:"  # how a spec names a stored model
 CAMPAIGN_ID_FIELD = "id"  # in the answer to a campaign creation
 STATE_FIELD = "state"  # in the coverage answer
-FINISHED_STATES = {"finished"}
-FAILED_STATES = {"failed", "cancelled", "canceled"}
-FRACTIONS_FIELD = "fractions"  # in the coverage answer: {"safe": x, "unsafe": y, ...}
+FINISHED_STATES = {"done"}
+FAILED_STATES = {"cancelled"}
+FRACTIONS_FIELD = "statuses"  # in the coverage answer: {"safe": {"fraction": x, ...}, ...}
+FRACTION_FIELD = "fraction"  # inside each status
 SAFE_FIELD = "safe"
 TOKEN_ENV = "TESSERA_TOKEN"
 # ----------------------------------------------------------------------------------------
@@ -156,10 +157,13 @@ def main(argv=None):
         if state in FAILED_STATES:
             print(f"FAIL: campaign {cid} ended in state '{state}'")
             return EXIT_BELOW
-        fractions = field(cov, FRACTIONS_FIELD, "coverage")
+        statuses = field(cov, FRACTIONS_FIELD, "coverage")
+        if not isinstance(statuses, dict):
+            raise GateError(f"coverage.{FRACTIONS_FIELD} is not an object")
+        fractions = {k: v.get(FRACTION_FIELD) for k, v in statuses.items() if isinstance(v, dict)}
         safe = field(fractions, SAFE_FIELD, f"coverage.{FRACTIONS_FIELD}")
         if not isinstance(safe, (int, float)) or isinstance(safe, bool) or not 0.0 <= safe <= 1.0:
-            raise GateError(f"coverage.{FRACTIONS_FIELD}.{SAFE_FIELD} is not a fraction: {safe!r}")
+            raise GateError(f"coverage.{FRACTIONS_FIELD}.{SAFE_FIELD}.{FRACTION_FIELD} is not a fraction: {safe!r}")
     except GateError as e:
         print(f"error: {e}", file=sys.stderr)
         return EXIT_ERROR

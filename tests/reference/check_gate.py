@@ -12,7 +12,7 @@ Checks (each exits non-zero with a message when it fails):
   2. below the threshold: --min-safe 0.8 -> exit 1;
   3. a wrong bearer token (HTTP 401) -> exit 2;
   4. a server that reports a different hash for an upload -> exit 2;
-  5. a campaign that ends failed -> exit 1.
+  5. a campaign that ends cancelled -> exit 1.
 
 Usage: python3 tests/reference/check_gate.py REPO_ROOT
 """
@@ -36,7 +36,7 @@ sys.path.insert(0, os.path.join(root, "deploy", "pipeline"))
 import gate as G  # noqa: E402  (wire-format names)
 
 TOKEN = "test-token"
-STATE = {"safe": 0.75, "final": "finished", "lie_about_hash": False, "models": {}, "campaigns": [], "polls": 0}
+STATE = {"safe": 0.75, "final": "done", "lie_about_hash": False, "models": {}, "campaigns": [], "polls": 0}
 
 
 class Handler(http.server.BaseHTTPRequestHandler):
@@ -80,9 +80,9 @@ class Handler(http.server.BaseHTTPRequestHandler):
             return self.reply(404, {"error": "no route"})
         STATE["polls"] += 1
         if STATE["polls"] < 3:
-            return self.reply(200, {G.STATE_FIELD: "running", G.FRACTIONS_FIELD: {G.SAFE_FIELD: 0.1}})
-        fr = {G.SAFE_FIELD: STATE["safe"], "unsafe": 0.05, "inconclusive": 1.0 - STATE["safe"] - 0.05}
-        self.reply(200, {G.STATE_FIELD: STATE["final"], G.FRACTIONS_FIELD: fr})
+            return self.reply(200, {G.STATE_FIELD: "running", G.FRACTIONS_FIELD: {G.SAFE_FIELD: {G.FRACTION_FIELD: 0.1}}})
+        fr = {G.SAFE_FIELD: STATE["safe"], "unsafe": 0.05, "unresolved": 1.0 - STATE["safe"] - 0.05}
+        self.reply(200, {G.STATE_FIELD: STATE["final"], G.FRACTIONS_FIELD: {k: {G.FRACTION_FIELD: v} for k, v in fr.items()}})
 
 
 server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
@@ -128,7 +128,7 @@ if code != 2 or "sha256" not in out:
     fail(f"expected exit 2 when the server reports another hash, got {code}:\n{out}")
 STATE["lie_about_hash"] = False
 
-STATE["final"] = "failed"
+STATE["final"] = "cancelled"
 code, out = run(0.1)
 if code != 1:
     fail(f"expected exit 1 for a failed campaign, got {code}:\n{out}")

@@ -170,6 +170,30 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
     assert!(md.status.success());
     assert!(String::from_utf8_lossy(&md.stdout).contains("not a certification"));
 
+    // The training pipeline's gate example against this live server: it uploads the
+    // model, creates its own campaign, follows it to the end and passes min-safe 0.
+    let gate_py = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/pipeline/gate.py");
+    let g = Command::new("python3")
+        .arg(&gate_py)
+        .args(["--server", &url, "--min-safe", "0", "--poll-s", "0.5", "--timeout-s", "240", "--spec"])
+        .arg(&spec_path)
+        .env("TESSERA_TOKEN", &admin)
+        .output()
+        .expect("python3 must be installed");
+    let g_out = String::from_utf8_lossy(&g.stdout);
+    assert_eq!(g.status.code(), Some(0), "pipeline gate: {g_out}{}", String::from_utf8_lossy(&g.stderr));
+    assert!(g_out.contains("PASS"), "{g_out}");
+    // And it fails the step when the bar is above what was proven.
+    let g = Command::new("python3")
+        .arg(&gate_py)
+        .args(["--server", &url, "--min-safe", "1", "--poll-s", "0.5", "--timeout-s", "240", "--spec"])
+        .arg(&spec_path)
+        .env("TESSERA_TOKEN", &admin)
+        .output()
+        .unwrap();
+    let safe_all = cov["statuses"]["safe"]["volume"].as_i64().unwrap() == total;
+    assert_eq!(g.status.code(), Some(if safe_all { 0 } else { 1 }), "{}", String::from_utf8_lossy(&g.stdout));
+
     // SIGTERM: the surviving worker stops with status 0.
     term(&guard.0[2]);
     let st = guard.0[2].wait().unwrap();
