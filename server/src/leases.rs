@@ -142,6 +142,20 @@ struct Ending {
     lease_id: String,
 }
 
+impl Ending {
+    /// From a row of `SELECT rowid, id, campaign_id, depth, attempts, lease_id FROM cells`.
+    fn from_row(r: &sqlx::sqlite::SqliteRow) -> ApiResult<Ending> {
+        Ok(Ending {
+            rowid: r.try_get(0)?,
+            cell_id: r.try_get(1)?,
+            campaign_id: r.try_get(2)?,
+            depth: r.try_get::<i64, _>(3)? as u32,
+            attempts: r.try_get(4)?,
+            lease_id: r.try_get::<Option<String>, _>(5)?.unwrap_or_default(),
+        })
+    }
+}
+
 /// Return leases that expired before `now` to the queue (or mark their cells
 /// `failed` once they have used up their attempts). Returns how many.
 pub async fn reclaim_expired(store: &Store, limits: QueueLimits) -> ApiResult<u64> {
@@ -169,14 +183,7 @@ async fn reclaim_expired_in(
     .await?;
     let mut ends = Vec::with_capacity(rows.len());
     for r in rows {
-        ends.push(Ending {
-            rowid: r.try_get(0)?,
-            cell_id: r.try_get(1)?,
-            campaign_id: r.try_get(2)?,
-            depth: r.try_get::<i64, _>(3)? as u32,
-            attempts: r.try_get(4)?,
-            lease_id: r.try_get::<Option<String>, _>(5)?.unwrap_or_default(),
-        });
+        ends.push(Ending::from_row(&r)?);
     }
     let n = ends.len() as u64;
     end_leases(store, tx, limits, now, ends, "expired", deltas).await?;
@@ -256,14 +263,7 @@ pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -
             q = q.bind(l.as_str());
         }
         for r in q.fetch_all(&mut *w.tx).await? {
-            ends.push(Ending {
-                rowid: r.try_get(0)?,
-                cell_id: r.try_get(1)?,
-                campaign_id: r.try_get(2)?,
-                depth: r.try_get::<i64, _>(3)? as u32,
-                attempts: r.try_get(4)?,
-                lease_id: r.try_get::<Option<String>, _>(5)?.unwrap_or_default(),
-            });
+            ends.push(Ending::from_row(&r)?);
         }
     }
     let released: HashSet<String> = ends.iter().map(|e| e.lease_id.clone()).collect();
@@ -295,14 +295,7 @@ pub async fn withdraw_leases(
     .await?;
     let mut ends = Vec::new();
     for r in rows {
-        ends.push(Ending {
-            rowid: r.try_get(0)?,
-            cell_id: r.try_get(1)?,
-            campaign_id: r.try_get(2)?,
-            depth: r.try_get::<i64, _>(3)? as u32,
-            attempts: r.try_get(4)?,
-            lease_id: r.try_get::<Option<String>, _>(5)?.unwrap_or_default(),
-        });
+        ends.push(Ending::from_row(&r)?);
     }
     end_leases(store, tx, limits, now_ms(), ends, "withdrawn", deltas).await
 }

@@ -379,41 +379,30 @@ impl Interval {
         Some((m_min as i64, m_max as i64))
     }
 
-    /// cos: monotone pieces between multiples of π, extrema ±1 where they may occur.
+    /// cos: monotone between multiples of π; maximum 1 at even, minimum −1 at odd ones.
     pub fn cos(self) -> Interval {
-        if self.is_undefined() {
-            return self;
-        }
-        if !self.is_bounded() {
-            return Interval::new(-1.0, 1.0);
-        }
-        let Some((m0, m1)) = self.multiples_of_pi(0.0) else {
-            return Interval::new(-1.0, 1.0);
-        };
-        let e = Interval::libm(self.lo.cos(), self.lo.cos()).hull(&Interval::libm(self.hi.cos(), self.hi.cos()));
-        let (mut lo, mut hi) = (e.lo, e.hi);
-        for m in m0..=m1 {
-            if m.rem_euclid(2) == 0 {
-                hi = 1.0;
-            } else {
-                lo = -1.0;
-            }
-        }
-        Interval::new(lo.max(-1.0), hi.min(1.0))
+        self.periodic(0.0, f64::cos)
     }
 
     /// sin: extrema at π/2 + mπ (maximum for even m, minimum for odd m).
     pub fn sin(self) -> Interval {
+        self.periodic(0.5, f64::sin)
+    }
+
+    /// Enclosure of sin or cos (`f`), whose extrema lie at (m + offset)·π: the maximum 1
+    /// for even m and the minimum −1 for odd m; between them `f` is monotone, so the
+    /// ends and the extrema that may lie inside bound the image.
+    fn periodic(self, offset: f64, f: fn(f64) -> f64) -> Interval {
         if self.is_undefined() {
             return self;
         }
         if !self.is_bounded() {
             return Interval::new(-1.0, 1.0);
         }
-        let Some((m0, m1)) = self.multiples_of_pi(0.5) else {
+        let Some((m0, m1)) = self.multiples_of_pi(offset) else {
             return Interval::new(-1.0, 1.0);
         };
-        let e = Interval::libm(self.lo.sin(), self.lo.sin()).hull(&Interval::libm(self.hi.sin(), self.hi.sin()));
+        let e = Interval::libm(f(self.lo), f(self.lo)).hull(&Interval::libm(f(self.hi), f(self.hi)));
         let (mut lo, mut hi) = (e.lo, e.hi);
         for m in m0..=m1 {
             if m.rem_euclid(2) == 0 {
