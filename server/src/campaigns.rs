@@ -702,3 +702,96 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
         "problems": problems,
     }))
 }
+
+/// Most rows of one page of [`leaves`].
+pub const MAX_LEAVES_PAGE: i64 = 50_000;
+
+/// Cells for drawing a coverage map, compactly: one row `[rowid, status, depth, lo0,
+/// hi0, lo1, hi1, …]` per cell, the bounds over the split states in `split_states`
+/// order, `status` an index into `statuses`. Without `since_ms`: the leaves (no
+/// `split` cells). With `since_ms`: every cell (split ones included, which tells the
+/// reader to drop it as a leaf) whose status or lease changed at or after that time.
+/// Paginated by `after` (the `next_after` of the previous page); `as_of_ms` is read
+/// before the query, so a reader that asks next with `since_ms` a little before it
+/// (writes are stamped before they commit) misses no change.
+pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, limit: i64) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let as_of = now_ms();
+    let rows = sqlx::query(
+        "SELECT rowid, status, depth, box FROM cells
+         WHERE campaign_id = ?1 AND rowid > ?2
+           AND ((?3 IS NULL AND status != 'split') OR updated_at >= ?3)
+         ORDER BY rowid LIMIT ?4",
+    )
+    .bind(id)
+    .bind(after)
+    .bind(since_ms)
+    .bind(limit)
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::with_capacity(rows.len());
+    let mut last = None;
+    for r in &rows {
+        let rowid: i64 = r.try_get(0)?;
+        last = Some(rowid);
+        let status: String = r.try_get(1)?;
+        let code = ALL_STATUSES.iter().position(|s| *s == status).ok_or_else(|| ApiError::internal("unknown cell status"))?;
+        let b: Vec<u8> = r.try_get(3)?;
+        let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
+        let mut row = Vec::with_capacity(3 + 2 * cell.len());
+        row.push(json!(rowid));
+        row.push(json!(code));
+        row.push(json!(r.try_get::<i64, _>(2)?));
+        for [lo, hi] in cell {
+            row.push(json!(lo));
+            row.push(json!(hi));
+        }
+        out.push(Value::Array(row));
+    }
+    let next = if rows.len() as i64 == limit { last } else { None };
+    let split_states: Vec<&str> = info.split.iter().map(|&k| info.states[k].as_str()).collect();
+    Ok(json!({
+        "campaign_id": id,
+        "states": info.states,
+        "envelope": info.envelope,
+        "split_states": split_states,
+        "statuses": ALL_STATUSES,
+        "columns": "rowid, status index, depth, then lo and hi of each split state",
+        "as_of_ms": as_of,
+        "rows": out,
+        "next_after": next,
+    }))
+}
+
+/// The latest results of a campaign, newest first: verdict kind, cell, worker, times.
+pub async fn recent_results(store: &Store, id: &str, limit: i64) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let rows = sqlx::query(
+        "SELECT r.id, r.cell_id, r.kind, r.worker, r.elapsed_ms, r.received_at, r.verdict_json, c.depth, c.box
+         FROM results r JOIN cells c ON c.id = r.cell_id
+         WHERE r.campaign_id = ? ORDER BY r.rowid DESC LIMIT ?",
+    )
+    .bind(id)
+    .bind(limit)
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::new();
+    for r in &rows {
+        let v: Value = serde_json::from_str(&r.try_get::<String, _>(6)?).unwrap_or(Value::Null);
+        let b: Vec<u8> = r.try_get(8)?;
+        let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
+        out.push(json!({
+            "result_id": r.try_get::<String, _>(0)?,
+            "cell_id": r.try_get::<String, _>(1)?,
+            "kind": r.try_get::<String, _>(2)?,
+            "worker": r.try_get::<String, _>(3)?,
+            "elapsed_ms": r.try_get::<Option<f64>, _>(4)?,
+            "received_at_ms": r.try_get::<i64, _>(5)?,
+            "reason": v.get("reason").cloned().unwrap_or(Value::Null),
+            "error": v.get("error").cloned().unwrap_or(Value::Null),
+            "depth": r.try_get::<i64, _>(7)?,
+            "box": info.full_box(&cell),
+        }));
+    }
+    Ok(json!({ "results": out }))
+}

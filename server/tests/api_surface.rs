@@ -19,6 +19,15 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
     const PUBLIC: &[&str] = &[];
     Some(match (method, path) {
         ("GET", "/healthz") | ("GET", "/api/v1/openapi.json") => PUBLIC,
+        // The dashboard's pages and assets are public; the page asks for a token and
+        // every API call it makes is checked like any other.
+        ("GET", "/")
+        | ("GET", "/dashboard")
+        | ("GET", "/dashboard/campaigns/{id}")
+        | ("GET", "/dashboard/app.js")
+        | ("GET", "/dashboard/style.css") => PUBLIC,
+        // Any known token may ask which role it has.
+        ("GET", "/api/v1/whoami") => READ_WORK,
         ("GET", "/metrics") => READ,
         ("POST", "/api/v1/models") => SUBMIT,
         ("GET", "/api/v1/models/{sha256}") => READ_WORK,
@@ -32,9 +41,14 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
         ("GET", "/api/v1/campaigns/{id}/coverage")
         | ("GET", "/api/v1/campaigns/{id}/cells")
         | ("GET", "/api/v1/campaigns/{id}/counterexamples")
+        | ("GET", "/api/v1/campaigns/{id}/leaves")
+        | ("GET", "/api/v1/campaigns/{id}/results")
         | ("GET", "/api/v1/campaigns/{id}/report")
         | ("GET", "/api/v1/campaigns/{id}/report.md") => READ,
-        ("POST", "/api/v1/leases") | ("POST", "/api/v1/leases/extend") | ("POST", "/api/v1/results") => WORK,
+        ("POST", "/api/v1/leases")
+        | ("POST", "/api/v1/leases/extend")
+        | ("POST", "/api/v1/leases/release")
+        | ("POST", "/api/v1/results") => WORK,
         ("POST", "/api/v1/admin/tokens") | ("GET", "/api/v1/admin/campaigns/{id}/tiling") => ADMIN,
         _ => return None,
     })
@@ -48,7 +62,7 @@ fn body_for(method: &str, path: &str, spec: &Value) -> Option<Vec<u8>> {
         "/api/v1/models" => tessera_server::model_check::testing::tiny_model(1, 2, "matrix"),
         "/api/v1/campaigns" => spec.to_string().into_bytes(),
         "/api/v1/leases" => json!({"max": 1}).to_string().into_bytes(),
-        "/api/v1/leases/extend" => json!({"lease_ids": []}).to_string().into_bytes(),
+        "/api/v1/leases/extend" | "/api/v1/leases/release" => json!({"lease_ids": []}).to_string().into_bytes(),
         "/api/v1/results" => json!({"results": []}).to_string().into_bytes(),
         "/api/v1/admin/tokens" => json!({"role": "viewer"}).to_string().into_bytes(),
         _ => b"{}".to_vec(),
