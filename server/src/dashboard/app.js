@@ -99,7 +99,12 @@
       const st = cov.statuses[s];
       if (!st) continue;
       tip.push(LABEL[s] + ': ' + fmtPct(st.fraction) + ' (' + st.reduced + ')');
-      if (st.fraction > 0) parts.push(el('span', { class: 's-' + s, style: 'width:' + (100 * st.fraction) + '%' }));
+      if (st.fraction > 0) {
+        const seg = el('span', { class: 's-' + s, title: LABEL[s] + ': ' + fmtPct(st.fraction) });
+        // Set through the CSS object model: the page's policy refuses inline style attributes.
+        seg.style.width = (100 * st.fraction) + '%';
+        parts.push(seg);
+      }
     }
     container.replaceChildren(...parts);
     container.title = tip.join('\n');
@@ -250,6 +255,7 @@
     M.sinceMs = null;
     M.lastFull = 0;
     M.cexCount = -1;
+    $('drawn').textContent = '';
     legend($('map-legend'), SEVERITY);
     await poll(refreshCampaign);
   }
@@ -635,5 +641,9 @@
     }
     route();
   }
+  // A link with a new token in the fragment, followed from this page, logs in again.
+  window.addEventListener('hashchange', () => {
+    if (new URLSearchParams(location.hash.replace(/^#/, '')).get('token')) start();
+  });
   start();
 })();
