@@ -244,7 +244,7 @@ struct Tally {
 /// Scripted verdicts by the cell's box: h's upper end ≤ 0.5 is safe; h ≥ 0.75 with
 /// v ≥ 0 is unsafe (with a made-up trajectory that leaves the envelope); anything else
 /// inconclusive, which the server splits below max depth and marks unresolved at it.
-fn verdict(cell: &Value, tally: &mut Tally) -> Value {
+fn verdict(cell: &Value, max_depth: i64, tally: &mut Tally) -> Value {
     let h = &cell["box"]["h"];
     let v = &cell["box"]["v"];
     let (h0, h1) = (h[0].as_f64().unwrap(), h[1].as_f64().unwrap());
@@ -260,7 +260,7 @@ fn verdict(cell: &Value, tally: &mut Tally) -> Value {
         json!({"verdict": "unsafe", "reason": "scripted: reaches h >= 2", "split_hint": null,
                "counterexample": {"trajectory": trajectory, "commands": vec!["on"; 6]}, "stats": {}})
     } else {
-        if depth >= MAX_DEPTH {
+        if depth >= max_depth {
             tally.unresolved += 1;
         } else {
             tally.split += 1;
@@ -308,7 +308,7 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
             .as_array()
             .unwrap()
             .iter()
-            .map(|c| json!({"lease_id": c["lease_id"], "elapsed_ms": 1.0, "result": verdict(c, &mut tally)}))
+            .map(|c| json!({"lease_id": c["lease_id"], "elapsed_ms": 1.0, "result": verdict(c, MAX_DEPTH, &mut tally)}))
             .collect();
         if results.is_empty() {
             break;
@@ -437,4 +437,79 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     drop(b);
     rt.block_on(server.stop()).expect("server stops");
     println!("dashboard browser test with {} in {:.1} s", chromium.display(), t0.elapsed().as_secs_f64());
+}
+
+/// Benchmark, not run by default (`cargo test -p tessera-tests --test dashboard_browser
+/// -- --ignored --nocapture`): the campaign page with about 100,000 leaf cells. Prints
+/// how long the page took to fetch and draw the map and to answer a hover; fails only
+/// if the map does not show every leaf.
+#[test]
+#[ignore]
+fn benchmark_dashboard_with_100k_cells() {
+    let _ = chromium_path();
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    let dir = tempfile::tempdir().expect("temp dir");
+    let server = rt
+        .block_on(tessera_server::start(tessera_server::Config::for_tests(dir.path().join("tessera.sqlite"))))
+        .expect("server starts");
+    let token = |r: Role| rt.block_on(server.state.store.create_token(r, "browser bench")).expect("token");
+    let (sub, work) = (token(Role::Submitter), token(Role::Worker));
+    let api = Api { base: server.url() };
+    let model: Value = ureq::post(&format!("{}/api/v1/models", api.base))
+        .set("Authorization", &format!("Bearer {sub}"))
+        .send_bytes(&tessera_server::model_check::testing::tiny_model(1, 2, "bench"))
+        .expect("upload model")
+        .into_json()
+        .unwrap();
+    let mut s = spec(model["sha256"].as_str().unwrap());
+    s["refinement"]["max_depth"] = json!(24);
+    let t = Instant::now();
+    let id = api.post("/api/v1/campaigns?initial_depth=16", &sub, &s)["id"].as_str().unwrap().to_string();
+    println!("created a campaign with 65536 leaves in {:.1} s", t.elapsed().as_secs_f64());
+    let t = Instant::now();
+    let leaves = |api: &Api| {
+        let c = api.get(&format!("/api/v1/campaigns/{id}"), &sub)["cells"].clone();
+        ["pending", "leased", "safe", "unsafe", "unresolved", "failed"].iter().map(|k| c[*k].as_i64().unwrap()).sum::<i64>()
+    };
+    let mut tally = Tally::default();
+    while leaves(&api) < 100_000 {
+        let l = api.post("/api/v1/leases", &work, &json!({"max": 256, "worker": "bench"}));
+        let results: Vec<Value> = l["leases"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|c| json!({"lease_id": c["lease_id"], "result": verdict(c, 24, &mut tally)}))
+            .collect();
+        assert!(!results.is_empty());
+        api.post("/api/v1/results", &work, &json!({"worker": "bench", "results": results}));
+    }
+    let n = leaves(&api);
+    println!("drove it to {n} leaves in {:.1} s ({tally:?})", t.elapsed().as_secs_f64());
+
+    let t = Instant::now();
+    let mut b = Browser::launch(&format!("{}/dashboard/campaigns/{id}#token={sub}", api.base));
+    let drawn = b.wait_for(
+        &format!("(() => {{ const v = JSON.parse(document.getElementById('drawn').textContent); return v.total === {n} ? v : null; }})()"),
+        120,
+        "the map with every leaf",
+    );
+    println!("page open to map drawn: {:.2} s wall clock; drawn {drawn}", t.elapsed().as_secs_f64());
+    let first = b.eval("JSON.parse(document.getElementById('map').dataset.timing)");
+    println!("first (full) load: fetch+parse {} ms, draw {} ms", first["load_ms"], first["draw_ms"]);
+    let inc = b.wait_for("(() => { const t = JSON.parse(document.getElementById('map').dataset.timing); return t.full === false ? t : null; })()", 20, "an incremental poll");
+    println!("incremental poll (nothing changed): fetch {} ms", inc["load_ms"]);
+    let rect = b.eval("(() => { const r = document.getElementById('map').getBoundingClientRect(); return [r.left, r.top]; })()");
+    let (left, top) = (rect[0].as_f64().unwrap(), rect[1].as_f64().unwrap());
+    for k in 0..5 {
+        let x = left + 56.0 + (0.1 + 0.2 * k as f64) * 492.0;
+        b.call("Input.dispatchMouseEvent", json!({"type": "mouseMoved", "x": x, "y": top + 200.0}));
+        std::thread::sleep(Duration::from_millis(100));
+        let t = b.eval("JSON.parse(document.getElementById('map').dataset.timing).hover_ms");
+        println!("hover at h = {:.1}: {t} ms", 0.1 + 0.2 * k as f64);
+    }
+    let shot = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("dashboard-100k.png");
+    b.screenshot(&shot);
+    println!("screenshot: {}", shot.display());
+    drop(b);
+    rt.block_on(server.stop()).expect("server stops");
 }

@@ -247,6 +247,7 @@
     sinceMs: null, lastFull: 0, dirty: true,
     ax: 0, ay: 1, cex: [], cexCount: -1, cexAt: 0,
     view: null, // pixel mapping of the last drawing
+    timing: {}, // milliseconds of the last map load and drawing, for the benchmark
   };
 
   async function openCampaign(id) {
@@ -297,13 +298,19 @@
       M.spec._hash = c.spec_hash;
     }
     const full = M.sinceMs === null || Date.now() - M.lastFull > FULL_RELOAD_MS;
+    const t0 = performance.now();
     await loadLeaves(full);
+    M.timing.load_ms = Math.round(performance.now() - t0);
+    M.timing.full = full;
     if (M.cexCount !== c.cells.unsafe || Date.now() - M.cexAt > 30000) await loadCounterexamples();
     renderHeader();
     renderAxes();
     renderRecent(recent.results);
     if (M.dirty) drawMap();
+    publishTiming();
   }
+
+  function publishTiming() { $('map').dataset.timing = JSON.stringify(M.timing); }
 
   async function loadCounterexamples() {
     const r = await api('/api/v1/campaigns/' + M.id + '/counterexamples?limit=200');
@@ -465,6 +472,7 @@
   }
 
   function drawMap() {
+    const t0 = performance.now();
     M.dirty = false;
     const cv = $('map');
     const { ctx, w, h } = setupCanvas(cv);
@@ -473,6 +481,8 @@
     const xr = padRange(M.envelope[ax] || [0, 1]);
     const yr = padRange(M.envelope[ay] || [0, 1]);
     const f = axesFrame(ctx, w, h, xr, yr, M.states[ax] || '', M.states[ay] || '');
+    const dpr = window.devicePixelRatio || 1;
+    const snap = (v) => Math.round(v * dpr) / dpr;
     const buckets = Object.fromEntries(SEVERITY.map((s) => [s, []]));
     for (const cell of M.cells.values()) (buckets[cell.s] || (buckets[cell.s] = [])).push(cell);
     const drawn = { total: 0 };
@@ -489,10 +499,12 @@
       for (const cell of buckets[s]) {
         const [x0, x1] = cellIv(cell, ax);
         const [y0, y1] = cellIv(cell, ay);
-        const px = f.X(x0);
-        const py = f.Y(y1);
-        const pw = Math.max(f.X(x1) - px, 0.75);
-        const ph = Math.max(f.Y(y0) - py, 0.75);
+        // Edges snapped to device pixels: neighbours share an edge exactly, so that
+        // thousands of small cells show no seams or moiré from anti-aliasing.
+        const px = snap(f.X(x0));
+        const py = snap(f.Y(y1));
+        const pw = Math.max(snap(f.X(x1)) - px, 1 / dpr);
+        const ph = Math.max(snap(f.Y(y0)) - py, 1 / dpr);
         ctx.fillRect(px, py, pw, ph);
         if (few && pw > 3 && ph > 3) ctx.strokeRect(px, py, pw, ph);
         n++;
@@ -525,6 +537,7 @@
       (other.length ? '; over ' + other.join(', ') + ' each point shows the worst status of the cells above it' : '') +
       '. Black dots: starting points of counterexamples.';
     drawTrajectories();
+    M.timing.draw_ms = Math.round(performance.now() - t0);
   }
 
   function drawTrajectories() {
@@ -597,6 +610,14 @@
   $('map').addEventListener('mouseleave', () => { $('hover').hidden = true; });
 
   function showHover(ev) {
+    const t0 = performance.now();
+    try { hover(ev); } finally {
+      M.timing.hover_ms = Math.round(10 * (performance.now() - t0)) / 10;
+      publishTiming();
+    }
+  }
+
+  function hover(ev) {
     const f = M.view;
     if (!f) return;
     const rect = $('map').getBoundingClientRect();
