@@ -120,6 +120,8 @@ pub fn routes() -> Vec<Route> {
             B::None, JSON, || get(leaves)),
         r(Method::GET, "/api/v1/campaigns/{id}/results", Read, "The latest results, newest first",
             &[("limit", "how many, 1..1000 (default 20)")], B::None, JSON, || get(recent_results)),
+        r(Method::GET, "/api/v1/campaigns/{id}/history", Read, "Proven-safe, unsafe and unresolved fractions of the envelope over time",
+            &[("points", "number of equal time steps, 1..1000 (default 100)")], B::None, JSON, || get(history)),
         r(Method::GET, "/api/v1/campaigns/{id}/report", Read, "Campaign report (JSON)", &[], B::None, JSON, || get(report_json)),
         r(Method::GET, "/api/v1/campaigns/{id}/report.md", Read, "Campaign report (Markdown)", &[], B::None, "text/markdown; charset=utf-8", || get(report_md)),
         r(Method::POST, "/api/v1/leases", Work, "Lease a batch of cells", &[], B::Json("LeaseRequest"), JSON, || post(lease)),
@@ -424,6 +426,20 @@ async fn recent_results(State(st): State<AppState>, P(id): P, Q(q): Q<RecentQuer
         _ => return Err(ApiError::bad_request("limit must be between 1 and 1000").field("limit")),
     };
     Ok(Json(campaigns::recent_results(&st.store, &id, limit).await?))
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct HistoryQuery {
+    points: Option<usize>,
+}
+
+async fn history(State(st): State<AppState>, P(id): P, Q(q): Q<HistoryQuery>) -> ApiResult<Json<Value>> {
+    let points = match q.points.unwrap_or(100) {
+        v @ 1..=campaigns::MAX_HISTORY_POINTS => v,
+        _ => return Err(ApiError::bad_request(format!("points must be between 1 and {}", campaigns::MAX_HISTORY_POINTS)).field("points")),
+    };
+    Ok(Json(campaigns::history(&st.store, &id, points).await?))
 }
 
 /// The caller's role, so that the dashboard shows action buttons only to those who may act.

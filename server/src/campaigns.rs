@@ -795,3 +795,51 @@ pub async fn recent_results(store: &Store, id: &str, limit: i64) -> ApiResult<Va
     }
     Ok(json!({ "results": out }))
 }
+
+/// Most points of [`history`].
+pub const MAX_HISTORY_POINTS: usize = 1000;
+
+/// The decided volume over time: for `points` equal steps from the first to the last
+/// decisive result, the fraction of the envelope that was then proven safe, unsafe
+/// and unresolved. Each decided leaf counts from the time of the result that decided
+/// it, with its exact volume 2^(max_depth − depth); the last point equals the current
+/// coverage. Cells that were decided and later split (unsafe with `refine_unsafe`)
+/// count only through their children.
+pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let rows = sqlx::query(
+        "SELECT r.received_at, c.depth, c.status FROM cells c JOIN results r ON r.id = c.result_id
+         WHERE c.campaign_id = ? AND c.status IN ('safe', 'unsafe', 'unresolved') ORDER BY r.received_at",
+    )
+    .bind(id)
+    .fetch_all(&store.pool)
+    .await?;
+    let d = info.max_depth;
+    let total = refine::volume(d, 0) as f64;
+    let mut events: Vec<(i64, usize, i64)> = Vec::with_capacity(rows.len());
+    for r in &rows {
+        let status: String = r.try_get(2)?;
+        let k = ["safe", "unsafe", "unresolved"].iter().position(|s| *s == status).unwrap_or(0);
+        events.push((r.try_get(0)?, k, refine::volume(d, r.try_get::<i64, _>(1)? as u32)));
+    }
+    let mut out = Vec::new();
+    if let (Some(first), Some(last)) = (events.first().map(|e| e.0), events.last().map(|e| e.0)) {
+        let n = points.clamp(1, MAX_HISTORY_POINTS);
+        let mut acc = [0i64; 3];
+        let mut i = 0;
+        for p in 1..=n {
+            // The last step ends exactly at the last result, so nothing is left out.
+            let t = if p == n { last } else { first + (last - first) * p as i64 / n as i64 };
+            while i < events.len() && events[i].0 <= t {
+                acc[events[i].1] += events[i].2;
+                i += 1;
+            }
+            out.push(json!({"t_ms": t, "safe": acc[0] as f64 / total, "unsafe": acc[1] as f64 / total,
+                            "unresolved": acc[2] as f64 / total}));
+            if first == last {
+                break;
+            }
+        }
+    }
+    Ok(json!({"campaign_id": id, "max_depth": d, "points": out}))
+}

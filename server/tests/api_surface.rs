@@ -43,6 +43,7 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
         | ("GET", "/api/v1/campaigns/{id}/counterexamples")
         | ("GET", "/api/v1/campaigns/{id}/leaves")
         | ("GET", "/api/v1/campaigns/{id}/results")
+        | ("GET", "/api/v1/campaigns/{id}/history")
         | ("GET", "/api/v1/campaigns/{id}/report")
         | ("GET", "/api/v1/campaigns/{id}/report.md") => READ,
         ("POST", "/api/v1/leases")

@@ -158,3 +158,37 @@ async fn dashboard_pages_are_public_and_self_contained() {
     let _: Value = r.json();
     ts.server.stop().await.unwrap();
 }
+
+#[tokio::test]
+async fn history_grows_to_the_current_coverage() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = start(config(dir.path())).await;
+    let model = upload_model(&ts, "history").await;
+    let id = create_campaign(&ts, &spec(&model, 5), "").await;
+    let url = format!("/api/v1/campaigns/{id}/history?points=7");
+    let r = ts.client.get(&url, ts.token(Role::Viewer)).await;
+    assert_eq!(r.status, 200, "{}", r.text());
+    assert_eq!(r.json()["points"], serde_json::json!([]), "no results, no history");
+    for _ in 0..4 {
+        drive(&ts, 2, Some(1)).await;
+        tokio::time::sleep(std::time::Duration::from_millis(3)).await;
+    }
+    drive(&ts, 4, None).await;
+    let points = ts.client.get(&url, ts.token(Role::Viewer)).await.json()["points"].as_array().unwrap().clone();
+    assert!(!points.is_empty() && points.len() <= 7, "{points:?}");
+    for w in points.windows(2) {
+        assert!(w[0]["t_ms"].as_i64() <= w[1]["t_ms"].as_i64());
+        for s in ["safe", "unsafe", "unresolved"] {
+            assert!(w[0][s].as_f64() <= w[1][s].as_f64(), "{s} decreased: {w:?}");
+        }
+    }
+    // The last point is the coverage, read from the exact counters.
+    let cov = coverage(&ts, &id).await;
+    let last = points.last().unwrap();
+    for s in ["safe", "unsafe", "unresolved"] {
+        assert_eq!(last[s].as_f64().unwrap(), cov["statuses"][s]["fraction"].as_f64().unwrap(), "{s}");
+    }
+    assert!(last["safe"].as_f64().unwrap() > 0.0);
+    assert_eq!(ts.client.get(&format!("/api/v1/campaigns/{id}/history?points=0"), ts.token(Role::Viewer)).await.status, 400);
+    ts.server.stop().await.unwrap();
+}
