@@ -368,6 +368,11 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     for label in ["proven safe", "unsafe", "unresolved", "pending"] {
         assert!(legend.as_str().unwrap().contains(label), "legend: {legend}");
     }
+    // The history chart ends at the coverage.
+    let cov = api.get(&format!("/api/v1/campaigns/{id}/coverage"), &viewer);
+    let note = b.wait_for("document.getElementById('history-note').textContent || null", 5, "the history chart");
+    let safe_pct = format!("{:.2} % proven safe", 100.0 * cov["statuses"]["safe"]["fraction"].as_f64().unwrap());
+    assert!(note.as_str().unwrap().starts_with(&format!("Now: {safe_pct}")), "{note} vs {safe_pct}");
     // Recent results list the newest results.
     let recent = b.eval("document.querySelectorAll('#recent tbody tr').length");
     assert_eq!(recent, json!(15));
@@ -375,8 +380,8 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     // Hover over h = 0.1, v = 0 (the safe half) with a real mouse event.
     let rect = b.eval("(() => { const r = document.getElementById('map').getBoundingClientRect(); return [r.left, r.top]; })()");
     let (left, top) = (rect[0].as_f64().unwrap(), rect[1].as_f64().unwrap());
-    // Plot area of the 560 px map: 56 px left margin, 492 px wide; 10 px top margin, 510 px high.
-    let (x, y) = (left + 56.0 + 0.1 * 492.0, top + 10.0 + 0.5 * 510.0 + 10.0);
+    // Plot area of the 560 px map: 56 px left margin, 486 px wide; 10 px top margin, 510 px high.
+    let (x, y) = (left + 56.0 + 0.1 * 486.0, top + 10.0 + 0.5 * 510.0 + 10.0);
     b.call("Input.dispatchMouseEvent", json!({"type": "mouseMoved", "x": x, "y": y}));
     let hover = b.wait_for("(() => { const h = document.getElementById('hover'); return h.hidden ? null : h.textContent; })()", 5, "the hover box");
     let hover = hover.as_str().unwrap().to_string();
@@ -501,7 +506,7 @@ fn benchmark_dashboard_with_100k_cells() {
     let rect = b.eval("(() => { const r = document.getElementById('map').getBoundingClientRect(); return [r.left, r.top]; })()");
     let (left, top) = (rect[0].as_f64().unwrap(), rect[1].as_f64().unwrap());
     for k in 0..5 {
-        let x = left + 56.0 + (0.1 + 0.2 * k as f64) * 492.0;
+        let x = left + 56.0 + (0.1 + 0.2 * k as f64) * 486.0;
         b.call("Input.dispatchMouseEvent", json!({"type": "mouseMoved", "x": x, "y": top + 200.0}));
         std::thread::sleep(Duration::from_millis(100));
         let t = b.eval("JSON.parse(document.getElementById('map').dataset.timing).hover_ms");

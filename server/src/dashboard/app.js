@@ -11,6 +11,7 @@
   // before the previous answer's time so that none is missed.
   const SINCE_SLACK_MS = 10000;
   const PAGE = 20000;
+  const HISTORY_MS = 15000;
   // Drawing order, best to worst: where cells overlap in the chosen two axes (they
   // differ in the other dimensions) the worst status ends on top.
   const SEVERITY = ['safe', 'pending', 'leased', 'unresolved', 'failed', 'unsafe'];
@@ -247,6 +248,7 @@
     sinceMs: null, lastFull: 0, dirty: true,
     ax: 0, ay: 1, cex: [], cexCount: -1, cexAt: 0,
     view: null, // pixel mapping of the last drawing
+    history: [], historyAt: 0,
     timing: {}, // milliseconds of the last map load and drawing, for the benchmark
   };
 
@@ -256,6 +258,7 @@
     M.sinceMs = null;
     M.lastFull = 0;
     M.cexCount = -1;
+    M.historyAt = 0;
     $('drawn').textContent = '';
     legend($('map-legend'), SEVERITY);
     await poll(refreshCampaign);
@@ -303,6 +306,11 @@
     M.timing.load_ms = Math.round(performance.now() - t0);
     M.timing.full = full;
     if (M.cexCount !== c.cells.unsafe || Date.now() - M.cexAt > 30000) await loadCounterexamples();
+    if (Date.now() - M.historyAt > HISTORY_MS) {
+      M.history = (await api(base + '/history?points=120')).points;
+      M.historyAt = Date.now();
+      drawHistory();
+    }
     renderHeader();
     renderAxes();
     renderRecent(recent.results);
@@ -440,7 +448,7 @@
   }
 
   function axesFrame(ctx, w, h, xr, yr, xname, yname) {
-    const m = { l: 56, r: 12, t: 10, b: 40 };
+    const m = { l: 56, r: 18, t: 10, b: 40 };
     const pw = w - m.l - m.r;
     const ph = h - m.t - m.b;
     const X = (x) => m.l + (x - xr[0]) / (xr[1] - xr[0]) * pw;
@@ -596,6 +604,39 @@
       return el('li', { text: 'depth ' + c.depth + ': start ' + start + (t ? ', ' + t.length + ' points' : '') +
         (c.reason ? ' — ' + c.reason : '') });
     }));
+  }
+
+  // Stacked areas of the proven-safe, unsafe and unresolved fractions over time.
+  function drawHistory() {
+    const cv = $('history');
+    const { ctx, w, h } = setupCanvas(cv);
+    const pts = M.history;
+    if (!pts.length) {
+      ctx.fillStyle = '#fff';
+      ctx.fillRect(0, 0, w, h);
+      $('history-note').textContent = 'No results yet.';
+      return;
+    }
+    const t0 = pts[0].t_ms;
+    const t1 = Math.max(pts[pts.length - 1].t_ms, t0 + 1);
+    const f = axesFrame(ctx, w, h, [0, (t1 - t0) / 1000], [0, 1], 'seconds since the first result', 'fraction');
+    let base = pts.map(() => 0);
+    for (const s of ['safe', 'unsafe', 'unresolved']) {
+      const top = pts.map((p, i) => base[i] + p[s]);
+      ctx.beginPath();
+      pts.forEach((p, i) => {
+        const x = f.X((p.t_ms - t0) / 1000);
+        if (i === 0) ctx.moveTo(x, f.Y(top[i])); else ctx.lineTo(x, f.Y(top[i]));
+      });
+      for (let i = pts.length - 1; i >= 0; i--) ctx.lineTo(f.X((pts[i].t_ms - t0) / 1000), f.Y(base[i]));
+      ctx.closePath();
+      ctx.fillStyle = COLOR[s];
+      ctx.fill();
+      base = top;
+    }
+    const last = pts[pts.length - 1];
+    $('history-note').textContent = 'Now: ' + fmtPct(last.safe) + ' proven safe, ' + fmtPct(last.unsafe) + ' unsafe, ' +
+      fmtPct(last.unresolved) + ' unresolved (stacked, colours as in the map).';
   }
 
   // Hover: the cells under the pointer in the chosen axes, worst status first.
