@@ -717,16 +717,24 @@ pub const MAX_LEAVES_PAGE: i64 = 50_000;
 pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, limit: i64) -> ApiResult<Value> {
     let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
     let as_of = now_ms();
-    let rows = sqlx::query(
-        "SELECT rowid, status, depth, box FROM cells
-         WHERE campaign_id = ?1 AND rowid > ?2
-           AND ((?3 IS NULL AND status != 'split') OR updated_at >= ?3)
-         ORDER BY rowid LIMIT ?4",
-    )
-    .bind(id)
-    .bind(after)
-    .bind(since_ms)
-    .bind(limit)
+    // Two statements, so that each can use its index (cells_changed for `since_ms`).
+    let rows = match since_ms {
+        None => sqlx::query(
+            "SELECT rowid, status, depth, box FROM cells
+             WHERE campaign_id = ?1 AND rowid > ?2 AND status != 'split' ORDER BY rowid LIMIT ?3",
+        )
+        .bind(id)
+        .bind(after)
+        .bind(limit),
+        Some(since) => sqlx::query(
+            "SELECT rowid, status, depth, box FROM cells INDEXED BY cells_changed
+             WHERE campaign_id = ?1 AND updated_at >= ?2 AND rowid > ?3 ORDER BY rowid LIMIT ?4",
+        )
+        .bind(id)
+        .bind(since)
+        .bind(after)
+        .bind(limit),
+    }
     .fetch_all(&store.pool)
     .await?;
     let mut out = Vec::with_capacity(rows.len());
