@@ -4,6 +4,7 @@
 use crate::auth::{Access, Role};
 use crate::campaigns::{self, CreateOptions};
 use crate::config::{Config, MAX_JSON_BYTES, MAX_MODEL_BYTES};
+use crate::dashboard;
 use crate::error::{ApiError, ApiResult};
 use crate::leases::{self, QueueLimits, SubmitItem};
 use crate::metrics::Metrics;
@@ -71,6 +72,7 @@ pub struct Route {
 }
 
 const JSON: &str = "application/json";
+const HTML: &str = "text/html; charset=utf-8";
 
 /// The route table. The router serves exactly these routes.
 pub fn routes() -> Vec<Route> {
@@ -85,6 +87,12 @@ pub fn routes() -> Vec<Route> {
              produces: &'static str,
              make: fn() -> MethodRouter<AppState>| Route { method, path, access, summary, query, body, produces, make };
     vec![
+        r(Method::GET, "/", Public, "Dashboard: the campaign list (HTML; the page asks for a token)", &[], B::None, HTML, || get(dashboard::index)),
+        r(Method::GET, "/dashboard", Public, "Dashboard: the campaign list (HTML)", &[], B::None, HTML, || get(dashboard::index)),
+        r(Method::GET, "/dashboard/campaigns/{id}", Public, "Dashboard: one campaign's coverage map, results and counterexamples (HTML)", &[], B::None, HTML, || get(dashboard::index)),
+        r(Method::GET, "/dashboard/app.js", Public, "Dashboard script", &[], B::None, "text/javascript; charset=utf-8", || get(dashboard::app_js)),
+        r(Method::GET, "/dashboard/style.css", Public, "Dashboard style sheet", &[], B::None, "text/css; charset=utf-8", || get(dashboard::style_css)),
+        r(Method::GET, "/api/v1/whoami", ReadOrWork, "The role of the caller's token: {\"role\": ...}", &[], B::None, JSON, || get(whoami)),
         r(Method::GET, "/healthz", Public, "Liveness and database check", &[], B::None, JSON, || get(healthz)),
         r(Method::GET, "/metrics", Public, "Prometheus text metrics (no token, so a scraper can read it)", &[], B::None, "text/plain; version=0.0.4", || get(metrics)),
         r(Method::GET, "/api/v1/openapi.json", Public, "This API's OpenAPI 3 document", &[], B::None, JSON, || get(openapi_doc)),
@@ -106,6 +114,14 @@ pub fn routes() -> Vec<Route> {
             B::None, JSON, || get(list_cells)),
         r(Method::GET, "/api/v1/campaigns/{id}/counterexamples", Read, "Results with verdict unsafe, paginated",
             &[("limit", "page size, 1..1000 (default 100)"), ("after", "next_after of the previous page")], B::None, JSON, || get(counterexamples)),
+        r(Method::GET, "/api/v1/campaigns/{id}/leaves", Read, "Cells for a coverage map, compact rows [rowid, status index, depth, lo, hi, ...] over the split states, paginated",
+            &[("since_ms", "only cells changed at or after this time, split ones included (default: all leaves)"),
+              ("limit", "page size, 1..50000 (default 10000)"), ("after", "next_after of the previous page")],
+            B::None, JSON, || get(leaves)),
+        r(Method::GET, "/api/v1/campaigns/{id}/results", Read, "The latest results, newest first",
+            &[("limit", "how many, 1..1000 (default 20)")], B::None, JSON, || get(recent_results)),
+        r(Method::GET, "/api/v1/campaigns/{id}/history", Read, "Proven-safe, unsafe and unresolved fractions of the envelope over time",
+            &[("points", "number of equal time steps, 1..1000 (default 100)")], B::None, JSON, || get(history)),
         r(Method::GET, "/api/v1/campaigns/{id}/report", Read, "Campaign report (JSON)", &[], B::None, JSON, || get(report_json)),
         r(Method::GET, "/api/v1/campaigns/{id}/report.md", Read, "Campaign report (Markdown)", &[], B::None, "text/markdown; charset=utf-8", || get(report_md)),
         r(Method::POST, "/api/v1/leases", Work, "Lease a batch of cells", &[], B::Json("LeaseRequest"), JSON, || post(lease)),
@@ -395,6 +411,56 @@ struct PageQuery {
 async fn counterexamples(State(st): State<AppState>, P(id): P, Q(q): Q<PageQuery>) -> ApiResult<Json<Value>> {
     let limit = page_limit(q.limit)?;
     Ok(Json(campaigns::counterexamples(&st.store, &id, limit, q.after.unwrap_or(0)).await?))
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct LeavesQuery {
+    since_ms: Option<i64>,
+    limit: Option<i64>,
+    after: Option<i64>,
+}
+
+async fn leaves(State(st): State<AppState>, P(id): P, Q(q): Q<LeavesQuery>) -> ApiResult<Json<Value>> {
+    let limit = match q.limit.unwrap_or(10_000) {
+        v @ 1..=campaigns::MAX_LEAVES_PAGE => v,
+        _ => return Err(ApiError::bad_request(format!("limit must be between 1 and {}", campaigns::MAX_LEAVES_PAGE)).field("limit")),
+    };
+    Ok(Json(campaigns::leaves(&st.store, &id, q.since_ms, q.after.unwrap_or(0), limit).await?))
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RecentQuery {
+    limit: Option<i64>,
+}
+
+async fn recent_results(State(st): State<AppState>, P(id): P, Q(q): Q<RecentQuery>) -> ApiResult<Json<Value>> {
+    let limit = match q.limit.unwrap_or(20) {
+        v @ 1..=1000 => v,
+        _ => return Err(ApiError::bad_request("limit must be between 1 and 1000").field("limit")),
+    };
+    Ok(Json(campaigns::recent_results(&st.store, &id, limit).await?))
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct HistoryQuery {
+    points: Option<usize>,
+}
+
+async fn history(State(st): State<AppState>, P(id): P, Q(q): Q<HistoryQuery>) -> ApiResult<Json<Value>> {
+    let points = match q.points.unwrap_or(100) {
+        v @ 1..=campaigns::MAX_HISTORY_POINTS => v,
+        _ => return Err(ApiError::bad_request(format!("points must be between 1 and {}", campaigns::MAX_HISTORY_POINTS)).field("points")),
+    };
+    Ok(Json(campaigns::history(&st.store, &id, points).await?))
+}
+
+/// The caller's role, so that the dashboard shows action buttons only to those who may act.
+async fn whoami(axum::Extension(caller): axum::Extension<Caller>) -> ApiResult<Json<Value>> {
+    let role = caller.0.ok_or_else(|| ApiError::internal("whoami reached without a caller"))?;
+    Ok(Json(json!({"role": role.as_str()})))
 }
 
 async fn report_json(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> {

@@ -692,6 +692,155 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
     }))
 }
 
+/// Most rows of one page of [`leaves`].
+pub const MAX_LEAVES_PAGE: i64 = 50_000;
+
+/// Cells for drawing a coverage map, compactly: one row `[rowid, status, depth, lo0,
+/// hi0, lo1, hi1, …]` per cell, the bounds over the split states in `split_states`
+/// order, `status` an index into `statuses`. Without `since_ms`: the leaves (no
+/// `split` cells). With `since_ms`: every cell (split ones included, which tells the
+/// reader to drop it as a leaf) whose status or lease changed at or after that time.
+/// Paginated by `after` (the `next_after` of the previous page); `as_of_ms` is read
+/// before the query, so a reader that asks next with `since_ms` a little before it
+/// (writes are stamped before they commit) misses no change.
+pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, limit: i64) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let as_of = now_ms();
+    // Two statements, so that each can use its index (cells_changed for `since_ms`).
+    let rows = match since_ms {
+        None => sqlx::query(
+            "SELECT rowid, status, depth, box FROM cells
+             WHERE campaign_id = ?1 AND rowid > ?2 AND status != 'split' ORDER BY rowid LIMIT ?3",
+        )
+        .bind(id)
+        .bind(after)
+        .bind(limit),
+        Some(since) => sqlx::query(
+            "SELECT rowid, status, depth, box FROM cells INDEXED BY cells_changed
+             WHERE campaign_id = ?1 AND updated_at >= ?2 AND rowid > ?3 ORDER BY rowid LIMIT ?4",
+        )
+        .bind(id)
+        .bind(since)
+        .bind(after)
+        .bind(limit),
+    }
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::with_capacity(rows.len());
+    let mut last = None;
+    for r in &rows {
+        let rowid: i64 = r.try_get(0)?;
+        last = Some(rowid);
+        let status: String = r.try_get(1)?;
+        let code = ALL_STATUSES.iter().position(|s| *s == status).ok_or_else(|| ApiError::internal("unknown cell status"))?;
+        let b: Vec<u8> = r.try_get(3)?;
+        let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
+        let mut row = Vec::with_capacity(3 + 2 * cell.len());
+        row.push(json!(rowid));
+        row.push(json!(code));
+        row.push(json!(r.try_get::<i64, _>(2)?));
+        for [lo, hi] in cell {
+            row.push(json!(lo));
+            row.push(json!(hi));
+        }
+        out.push(Value::Array(row));
+    }
+    let next = if rows.len() as i64 == limit { last } else { None };
+    let split_states: Vec<&str> = info.split.iter().map(|&k| info.states[k].as_str()).collect();
+    Ok(json!({
+        "campaign_id": id,
+        "states": info.states,
+        "envelope": info.envelope,
+        "split_states": split_states,
+        "statuses": ALL_STATUSES,
+        "columns": "rowid, status index, depth, then lo and hi of each split state",
+        "as_of_ms": as_of,
+        "rows": out,
+        "next_after": next,
+    }))
+}
+
+/// The latest results of a campaign, newest first: verdict kind, cell, worker, times.
+pub async fn recent_results(store: &Store, id: &str, limit: i64) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let rows = sqlx::query(
+        "SELECT r.id, r.cell_id, r.kind, r.worker, r.elapsed_ms, r.received_at, r.verdict_json, c.depth, c.box
+         FROM results r JOIN cells c ON c.id = r.cell_id
+         WHERE r.campaign_id = ? ORDER BY r.rowid DESC LIMIT ?",
+    )
+    .bind(id)
+    .bind(limit)
+    .fetch_all(&store.pool)
+    .await?;
+    let mut out = Vec::new();
+    for r in &rows {
+        let v: Value = serde_json::from_str(&r.try_get::<String, _>(6)?).unwrap_or(Value::Null);
+        let b: Vec<u8> = r.try_get(8)?;
+        let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
+        out.push(json!({
+            "result_id": r.try_get::<String, _>(0)?,
+            "cell_id": r.try_get::<String, _>(1)?,
+            "kind": r.try_get::<String, _>(2)?,
+            "worker": r.try_get::<String, _>(3)?,
+            "elapsed_ms": r.try_get::<Option<f64>, _>(4)?,
+            "received_at_ms": r.try_get::<i64, _>(5)?,
+            "reason": v.get("reason").cloned().unwrap_or(Value::Null),
+            "error": v.get("error").cloned().unwrap_or(Value::Null),
+            "depth": r.try_get::<i64, _>(7)?,
+            "box": info.full_box(&cell),
+        }));
+    }
+    Ok(json!({ "results": out }))
+}
+
+/// Most points of [`history`].
+pub const MAX_HISTORY_POINTS: usize = 1000;
+
+/// The decided volume over time: for `points` equal steps from the first to the last
+/// decisive result, the fraction of the envelope that was then proven safe, unsafe
+/// and unresolved. Each decided leaf counts from the time of the result that decided
+/// it, with its exact volume 2^(max_depth − depth); the last point equals the current
+/// coverage. Cells that were decided and later split (unsafe with `refine_unsafe`)
+/// count only through their children.
+pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value> {
+    let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let rows = sqlx::query(
+        "SELECT r.received_at, c.depth, c.status FROM cells c JOIN results r ON r.id = c.result_id
+         WHERE c.campaign_id = ? AND c.status IN ('safe', 'unsafe', 'unresolved') ORDER BY r.received_at",
+    )
+    .bind(id)
+    .fetch_all(&store.pool)
+    .await?;
+    let d = info.max_depth;
+    let total = refine::volume(d, 0) as f64;
+    let mut events: Vec<(i64, usize, i64)> = Vec::with_capacity(rows.len());
+    for r in &rows {
+        let status: String = r.try_get(2)?;
+        let k = ["safe", "unsafe", "unresolved"].iter().position(|s| *s == status).unwrap_or(0);
+        events.push((r.try_get(0)?, k, refine::volume(d, r.try_get::<i64, _>(1)? as u32)));
+    }
+    let mut out = Vec::new();
+    if let (Some(first), Some(last)) = (events.first().map(|e| e.0), events.last().map(|e| e.0)) {
+        let n = points.clamp(1, MAX_HISTORY_POINTS);
+        let mut acc = [0i64; 3];
+        let mut i = 0;
+        for p in 1..=n {
+            // The last step ends exactly at the last result, so nothing is left out.
+            let t = if p == n { last } else { first + (last - first) * p as i64 / n as i64 };
+            while i < events.len() && events[i].0 <= t {
+                acc[events[i].1] += events[i].2;
+                i += 1;
+            }
+            out.push(json!({"t_ms": t, "safe": acc[0] as f64 / total, "unsafe": acc[1] as f64 / total,
+                            "unresolved": acc[2] as f64 / total}));
+            if first == last {
+                break;
+            }
+        }
+    }
+    Ok(json!({"campaign_id": id, "max_depth": d, "points": out}))
+}
+
 #[cfg(test)]
 mod tests {
     #[test]

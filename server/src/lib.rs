@@ -8,6 +8,7 @@ pub mod api;
 pub mod auth;
 pub mod campaigns;
 pub mod config;
+pub mod dashboard;
 pub mod demo;
 pub mod error;
 pub mod leases;

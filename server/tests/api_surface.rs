@@ -20,6 +20,15 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
     Some(match (method, path) {
         // /metrics is public so that a Prometheus scraper needs no token.
         ("GET", "/healthz") | ("GET", "/api/v1/openapi.json") | ("GET", "/metrics") => PUBLIC,
+        // The dashboard's pages and assets are public; the page asks for a token and
+        // every API call it makes is checked like any other.
+        ("GET", "/")
+        | ("GET", "/dashboard")
+        | ("GET", "/dashboard/campaigns/{id}")
+        | ("GET", "/dashboard/app.js")
+        | ("GET", "/dashboard/style.css") => PUBLIC,
+        // Any known token may ask which role it has.
+        ("GET", "/api/v1/whoami") => READ_WORK,
         ("POST", "/api/v1/models") => SUBMIT,
         ("GET", "/api/v1/models/{sha256}") => READ_WORK,
         ("GET", "/api/v1/campaigns") => READ,
@@ -32,6 +41,9 @@ fn expected_roles(method: &str, path: &str) -> Option<&'static [&'static str]> {
         ("GET", "/api/v1/campaigns/{id}/coverage")
         | ("GET", "/api/v1/campaigns/{id}/cells")
         | ("GET", "/api/v1/campaigns/{id}/counterexamples")
+        | ("GET", "/api/v1/campaigns/{id}/leaves")
+        | ("GET", "/api/v1/campaigns/{id}/results")
+        | ("GET", "/api/v1/campaigns/{id}/history")
         | ("GET", "/api/v1/campaigns/{id}/report")
         | ("GET", "/api/v1/campaigns/{id}/report.md") => READ,
         ("POST", "/api/v1/leases")
