@@ -126,7 +126,10 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     }
 
     let mut workers = spawn_workers(&opts, &url, &worker_token)?;
-    println!("server at {url} — API under {url}/api/v1, admin token in {}", opts.dir.join("admin.token").display());
+    println!(
+        "server at {url} — dashboard {url}/dashboard, API under {url}/api/v1, admin token in {}",
+        opts.dir.join("admin.token").display()
+    );
     println!("{} worker processes × {} threads; logs in {}", opts.workers, opts.threads, opts.dir.display());
 
     let started = std::time::Instant::now();
@@ -184,7 +187,8 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
             exact_sum(&cov, &["unresolved", "failed"])
         ));
     }
-    println!("reports: {url}/api/v1/campaigns/<id>/report.md (token in {})", opts.dir.join("admin.token").display());
+    println!("dashboard: {url}/dashboard (log in with the token in {})", opts.dir.join("admin.token").display());
+    println!("reports: {url}/api/v1/campaigns/<id>/report.md");
     println!("These results are engineering evidence under the demo's stated model assumptions, not a certification.");
     if opts.exit_when_done {
         stop_workers(&mut workers);
