@@ -579,6 +579,27 @@ impl Expr {
         }
     }
 
+    /// A division whose divisor is a constant expression that may be zero (such as
+    /// `x / 0` or `x / (1 - 1)`): the text of that divisor, for a validation error.
+    pub fn constant_zero_divisor(&self) -> Option<String> {
+        let mut found = None;
+        self.visit(&mut |e| {
+            if let Expr::Div(_, d) = e {
+                let is_constant = !d.has_vars();
+                if found.is_none() && is_constant && d.eval_interval(&[]).contains_zero() {
+                    found = Some(d.to_string());
+                }
+            }
+        });
+        found
+    }
+
+    fn has_vars(&self) -> bool {
+        let mut any = false;
+        self.visit(&mut |e| any |= matches!(e, Expr::Var(_)));
+        any
+    }
+
     /// Whether the expression uses a function that is not differentiable everywhere
     /// (`abs`, `min`, `max`).
     pub fn has_kinks(&self) -> bool {

@@ -366,7 +366,12 @@ pub fn compile(doc: SpecDoc) -> Result<Spec, Vec<SpecError>> {
         match doc.dynamics.get(s) {
             None => e.push(err("dynamics", format!("no expression for state '{s}'"))),
             Some(src) => match expr::parse(src, &resolve_all) {
-                Ok(x) => dynamics.push(x),
+                Ok(x) => {
+                    if let Some(d) = x.constant_zero_divisor() {
+                        e.push(err(format!("dynamics.{s}"), format!("division by a divisor that is zero: {d}")));
+                    }
+                    dynamics.push(x)
+                }
                 Err(pe) => e.push(err(format!("dynamics.{s}"), pe.to_string())),
             },
         }
@@ -400,7 +405,12 @@ pub fn compile(doc: SpecDoc) -> Result<Spec, Vec<SpecError>> {
             }
         }
         match expr::parse(&o.expr, &resolve_states) {
-            Ok(x) => observations.push(Observation { name: o.name.clone(), expr: x, noise }),
+            Ok(x) => {
+                if let Some(d) = x.constant_zero_divisor() {
+                    e.push(err(format!("{p}.expr"), format!("division by a divisor that is zero: {d}")));
+                }
+                observations.push(Observation { name: o.name.clone(), expr: x, noise })
+            }
             Err(pe) => {
                 let hint = if resolve_all(first_unknown(&o.expr, &resolve_states).as_deref().unwrap_or("")).is_some() {
                     " (observations may use states only)"
@@ -538,7 +548,12 @@ pub fn compile(doc: SpecDoc) -> Result<Spec, Vec<SpecError>> {
         let mut cs = Vec::new();
         for (j, text) in conj.all.iter().enumerate() {
             match parse_constraint(text, &resolve_states) {
-                Ok(g) => cs.push(Constraint { text: text.clone(), g }),
+                Ok(g) => {
+                    if let Some(d) = g.constant_zero_divisor() {
+                        e.push(err(format!("unsafe[{i}].all[{j}]"), format!("division by a divisor that is zero: {d}")));
+                    }
+                    cs.push(Constraint { text: text.clone(), g })
+                }
                 Err(m) => e.push(err(format!("unsafe[{i}].all[{j}]"), m)),
             }
         }
@@ -857,6 +872,19 @@ mod tests {
         }
         let dyn_err = e.iter().find(|e| e.path == "dynamics.h").unwrap();
         assert!(dyn_err.message.contains("column 5") && dyn_err.message.contains("'k'"), "{dyn_err:?}");
+    }
+
+    #[test]
+    fn division_by_a_zero_constant_is_rejected() {
+        let mut v = example();
+        v["dynamics"]["h"] = serde_json::json!("q / (1 - 1) - 0.1 * h");
+        let e = errors_of(v);
+        assert_eq!(e[0].path, "dynamics.h");
+        assert!(e[0].message.contains("zero"), "{:?}", e);
+        // A divisor that is a state is fine at validation time (decided per set).
+        let mut v = example();
+        v["dynamics"]["h"] = serde_json::json!("q / (1 + h^2)");
+        assert!(errors_of(v).is_empty());
     }
 
     #[test]
