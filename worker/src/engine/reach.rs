@@ -28,18 +28,17 @@ pub enum Proof {
 pub struct Failure {
     pub reason: Reason,
     pub detail: String,
+    /// From the sensitivity of the blocking bound; `None` leaves the choice to the
+    /// caller's fallback rule ([`widest_normalized`]).
     pub split_hint: Option<SplitHint>,
     /// A point of the cell the failure points at (for the falsifier), if any.
     pub suspect: Option<Vec<f64>>,
-    pub suspect_command: Option<usize>,
 }
 
 struct Branch {
     set: StateSet,
     /// The command decided in the previous period (c_{k−1}).
     prev: usize,
-    /// The initial command this branch descends from.
-    root: usize,
 }
 
 /// Sensitivity of a blocking quantity to each split dimension, read from the
@@ -107,7 +106,7 @@ pub fn prove_traced(
     let mut frontier: Vec<Branch> = spec
         .initial_commands
         .iter()
-        .map(|&c| Branch { set: StateSet::from_box(cell), prev: c, root: c })
+        .map(|&c| Branch { set: StateSet::from_box(cell), prev: c })
         .collect();
     // Sensitivity of the observations that left a decision open (for the node budget).
     let mut ambiguity_hint: Option<SplitHint> = None;
@@ -122,7 +121,6 @@ pub fn prove_traced(
                     detail: format!("command tree passed {} nodes at period {k}", opts.node_budget),
                     split_hint: ambiguity_hint.clone(),
                     suspect: None,
-                    suspect_command: None,
                 });
             }
             if started.elapsed().as_secs_f64() > opts.time_budget_s {
@@ -131,7 +129,6 @@ pub fn prove_traced(
                     detail: format!("time budget of {} s spent at period {k}", opts.time_budget_s),
                     split_hint: ambiguity_hint.clone(),
                     suspect: None,
-                    suspect_command: None,
                 });
             }
 
@@ -190,21 +187,20 @@ pub fn prove_traced(
                             return Proof::Failed(Failure {
                                 reason: Reason::IntegrationFailed,
                                 detail: format!("period {k}, command '{}': {e}", spec.commands[applied].name),
-                                split_hint: hint_from_box(cl, cell),
+                                split_hint: None,
                                 suspect: Some(cell.iter().map(|i| i.mid()).collect()),
-                                suspect_command: Some(br.root),
                             })
                         }
                     };
                     if let Some(f) = check_tube(cl, cell, &flow, k, applied) {
-                        return Proof::Failed(Failure { suspect_command: Some(br.root), ..f });
+                        return Proof::Failed(f);
                     }
                 let mut set = match opts.set {
                     SetKind::Affine => flow.end.clone(),
                     SetKind::Box => StateSet::from_box(&flow.end.to_box()),
                 };
                 set.reduce(max_gens);
-                next.push(Branch { set, prev: c, root: br.root });
+                next.push(Branch { set, prev: c });
                 }
             }
         }
@@ -389,10 +385,6 @@ fn boxed_with_fresh_symbols(like: &StateSet, b: &[Interval]) -> StateSet {
     StateSet::from_forms(comps, s.num_symbols(), like.num_initial())
 }
 
-fn hint_from_box(cl: &ClosedLoop, cell: &[Interval]) -> Option<SplitHint> {
-    Some(widest_normalized(cl, cell))
-}
-
 /// Check every tube piece against every unsafe region; a failure names the first
 /// region that could not be excluded and the state the split should cut.
 fn check_tube(
@@ -422,7 +414,7 @@ fn check_tube(
                 .map(|(i, _)| i)
                 .unwrap_or(0);
             let form = &forms[best];
-            let hint = hint_from_coeffs(cl, cell, |d| form.coeff(d)).or_else(|| hint_from_box(cl, cell));
+            let hint = hint_from_coeffs(cl, cell, |d| form.coeff(d));
             // The initial point whose image the blocking constraint is lowest at: move
             // each initial symbol to the sign that decreases g.
             let suspect: Vec<f64> = (0..spec.states.len())
@@ -449,7 +441,6 @@ fn check_tube(
                 ),
                 split_hint: hint,
                 suspect: Some(suspect),
-                suspect_command: None,
             });
         }
     }
@@ -483,7 +474,7 @@ fn join_by_command(branches: Vec<Branch>, max_gens: usize) -> Vec<Branch> {
             let jbox = joined.to_box();
             let too_wide = jbox.iter().zip(&hull).any(|(j, h)| j.width() > 1.1 * h.width() + 1e-12);
             let set = if too_wide { boxed_with_fresh_symbols(&g[0].set, &hull) } else { joined };
-            Branch { set, prev: g[0].prev, root: g[0].root }
+            Branch { set, prev: g[0].prev }
         })
         .collect()
 }
