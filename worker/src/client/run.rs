@@ -92,9 +92,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
 
         // Collect finished cells.
         while let Ok(d) = done_rx.try_recv() {
-            held.remove(&d.lease_id);
-            summary.cells += 1;
-            pending.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
+            finished(d, &mut held, &mut pending, &mut summary);
         }
 
         // Deliver results in batches; keep them on a transient failure.
@@ -209,11 +207,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
 
         // Wait a little for the next finished cell.
         match done_rx.recv_timeout(Duration::from_millis(100)) {
-            Ok(d) => {
-                held.remove(&d.lease_id);
-                summary.cells += 1;
-                pending.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
-            }
+            Ok(d) => finished(d, &mut held, &mut pending, &mut summary),
             Err(mpsc::RecvTimeoutError::Timeout) => {}
             Err(mpsc::RecvTimeoutError::Disconnected) => break,
         }
@@ -226,6 +220,13 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
     }
     summary.seconds = started.elapsed().as_secs_f64();
     Ok(summary)
+}
+
+/// A cell is done: its lease no longer needs extending and its result waits to be sent.
+fn finished(d: Done, held: &mut HashMap<String, LeasedCell>, pending: &mut Vec<ResultItem>, summary: &mut RunSummary) {
+    held.remove(&d.lease_id);
+    summary.cells += 1;
+    pending.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
 }
 
 fn engine_thread(q: Arc<Queue>, tx: mpsc::Sender<Done>) {

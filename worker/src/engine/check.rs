@@ -15,15 +15,7 @@ pub fn check_cell(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
     let mut stats = Stats::default();
     let outcome = reach::prove(cl, cell, started, &mut stats);
     let mut verdict = match outcome {
-        Proof::Safe => Verdict {
-            verdict: VerdictKind::Safe,
-            reason: None,
-            detail: None,
-            split_hint: None,
-            counterexample: None,
-            stats: Stats::default(),
-            engine_version: ENGINE_VERSION.to_string(),
-        },
+        Proof::Safe => bare(VerdictKind::Safe),
         Proof::Failed(f) => {
             let t_f = Instant::now();
             let mut sims = 0;
@@ -39,25 +31,18 @@ pub fn check_cell(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
             stats.simulations = sims;
             match cx {
                 Some(cx) => Verdict {
-                    verdict: VerdictKind::Unsafe,
-                    reason: None,
                     detail: Some(format!(
                         "counterexample enters unsafe region {} at t = {:.4} s",
                         cx.unsafe_region, cx.entry_time
                     )),
-                    split_hint: None,
                     counterexample: Some(cx),
-                    stats: Stats::default(),
-                    engine_version: ENGINE_VERSION.to_string(),
+                    ..bare(VerdictKind::Unsafe)
                 },
                 None => Verdict {
-                    verdict: VerdictKind::Inconclusive,
                     reason: Some(f.reason),
                     detail: Some(f.detail),
                     split_hint: Some(f.split_hint.unwrap_or_else(|| reach::widest_normalized(cl, cell))),
-                    counterexample: None,
-                    stats: Stats::default(),
-                    engine_version: ENGINE_VERSION.to_string(),
+                    ..bare(VerdictKind::Inconclusive)
                 },
             }
         }
@@ -65,6 +50,19 @@ pub fn check_cell(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
     stats.wall_ms = started.elapsed().as_secs_f64() * 1e3;
     verdict.stats = stats;
     verdict
+}
+
+/// A verdict of this kind with nothing else filled in yet.
+fn bare(kind: VerdictKind) -> Verdict {
+    Verdict {
+        verdict: kind,
+        reason: None,
+        detail: None,
+        split_hint: None,
+        counterexample: None,
+        stats: Stats::default(),
+        engine_version: ENGINE_VERSION.to_string(),
+    }
 }
 
 /// A seed derived from the cell, so the same cell always gets the same verdict.

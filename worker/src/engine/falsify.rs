@@ -76,52 +76,62 @@ fn pick_in(r: &mut Rng, i: Interval, p: Pick) -> f64 {
     }
 }
 
-/// Simulate the closed loop from `x0`; return the candidate if it enters the unsafe set.
-pub fn simulate(cl: &ClosedLoop, x0: &[f64], c0: usize, dpick: Pick, npick: Pick, rng: &mut Rng) -> Option<Candidate> {
+/// The closed loop in f64 from `x0` over `periods` periods, with the observation noise
+/// and disturbance values of period k given by `choose(k)` (held for the period), until
+/// the first sampled state inside the unsafe set. Returns the sampled trajectory, the
+/// command decided in each period, and the entry time and region if there is one.
+fn run_loop(
+    cl: &ClosedLoop,
+    x0: &[f64],
+    c0: usize,
+    periods: usize,
+    mut choose: impl FnMut(usize) -> (Vec<f64>, Vec<f64>),
+) -> (Vec<TrajectoryPoint>, Vec<usize>, Option<(f64, usize)>) {
     let spec = &cl.spec;
     let steps = spec.engine.sim_steps;
+    let h = spec.period / steps as f64;
     let mut x = x0.to_vec();
     let mut prev = c0;
-    let mut cand = Candidate {
-        x0: x0.to_vec(),
-        initial_command: c0,
-        dist: Vec::new(),
-        noise: Vec::new(),
-        commands: Vec::new(),
-        trajectory: vec![TrajectoryPoint { t: 0.0, x: x.clone() }],
-        entry_time: 0.0,
-        region: 0,
-    };
+    let mut traj = vec![TrajectoryPoint { t: 0.0, x: x.clone() }];
+    let mut picked = Vec::new();
     if let Some(r) = unsafe_region_f64(cl, &x) {
-        cand.region = r;
-        return Some(cand);
+        return (traj, picked, Some((0.0, r)));
     }
-    for k in 0..spec.horizon {
-        let noise: Vec<f64> = spec.observations.iter().map(|o| pick_in(rng, o.noise, npick)).collect();
-        let dist: Vec<f64> = spec.disturbance_ranges.iter().map(|d| pick_in(rng, *d, dpick)).collect();
+    for k in 0..periods {
+        let (noise, dist) = choose(k);
         let c = cl.decide_f64(prev, &x, &noise);
+        picked.push(c);
         let applied = cl.applied(c, prev);
         let states = cl.plant.simulate_period(&x, &spec.commands[applied].inputs, &dist, spec.period, steps);
-        cand.noise.push(noise);
-        cand.dist.push(dist);
-        cand.commands.push(c);
-        let h = spec.period / steps as f64;
         for (s, xs) in states.iter().enumerate().skip(1) {
-            if xs.iter().any(|v| !v.is_finite()) {
-                return None;
-            }
             let t = k as f64 * spec.period + s as f64 * h;
-            cand.trajectory.push(TrajectoryPoint { t, x: xs.clone() });
+            traj.push(TrajectoryPoint { t, x: xs.clone() });
             if let Some(r) = unsafe_region_f64(cl, xs) {
-                cand.entry_time = t;
-                cand.region = r;
-                return Some(cand);
+                return (traj, picked, Some((t, r)));
             }
         }
         x = states.last().cloned().unwrap_or(x);
         prev = c;
     }
-    None
+    (traj, picked, None)
+}
+
+/// Simulate the closed loop from `x0`; return the candidate if it enters the unsafe set.
+pub fn simulate(cl: &ClosedLoop, x0: &[f64], c0: usize, dpick: Pick, npick: Pick, rng: &mut Rng) -> Option<Candidate> {
+    let spec = &cl.spec;
+    let (mut noises, mut dists) = (Vec::new(), Vec::new());
+    let (trajectory, commands, hit) = run_loop(cl, x0, c0, spec.horizon as usize, |_| {
+        let noise: Vec<f64> = spec.observations.iter().map(|o| pick_in(rng, o.noise, npick)).collect();
+        let dist: Vec<f64> = spec.disturbance_ranges.iter().map(|d| pick_in(rng, *d, dpick)).collect();
+        noises.push(noise.clone());
+        dists.push(dist.clone());
+        (noise, dist)
+    });
+    let (entry_time, region) = hit?;
+    if trajectory.iter().any(|p| p.x.iter().any(|v| !v.is_finite())) {
+        return None;
+    }
+    Some(Candidate { x0: x0.to_vec(), initial_command: c0, dist: dists, noise: noises, commands, trajectory, entry_time, region })
 }
 
 /// Soundly re-check a candidate. Returns the time range over which the state is
@@ -301,30 +311,5 @@ pub fn candidate_from(cl: &ClosedLoop, cx: &Counterexample) -> Result<Candidate,
 /// Re-simulate a recorded counterexample with its own choices (f64), returning the
 /// trajectory, the commands the controller picks on it, and the first unsafe time.
 pub fn replay(cl: &ClosedLoop, cand: &Candidate) -> (Vec<TrajectoryPoint>, Vec<usize>, Option<(f64, usize)>) {
-    let spec = &cl.spec;
-    let steps = spec.engine.sim_steps;
-    let mut x = cand.x0.clone();
-    let mut prev = cand.initial_command;
-    let mut traj = vec![TrajectoryPoint { t: 0.0, x: x.clone() }];
-    let mut picked = Vec::new();
-    if let Some(r) = unsafe_region_f64(cl, &x) {
-        return (traj, picked, Some((0.0, r)));
-    }
-    for k in 0..cand.commands.len() {
-        let c = cl.decide_f64(prev, &x, &cand.noise[k]);
-        picked.push(c);
-        let applied = cl.applied(c, prev);
-        let states = cl.plant.simulate_period(&x, &spec.commands[applied].inputs, &cand.dist[k], spec.period, steps);
-        let h = spec.period / steps as f64;
-        for (s, xs) in states.iter().enumerate().skip(1) {
-            let t = k as f64 * spec.period + s as f64 * h;
-            traj.push(TrajectoryPoint { t, x: xs.clone() });
-            if let Some(r) = unsafe_region_f64(cl, xs) {
-                return (traj, picked, Some((t, r)));
-            }
-        }
-        x = states.last().cloned().unwrap_or(x);
-        prev = c;
-    }
-    (traj, picked, None)
+    run_loop(cl, &cand.x0, cand.initial_command, cand.commands.len(), |k| (cand.noise[k].clone(), cand.dist[k].clone()))
 }
