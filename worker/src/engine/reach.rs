@@ -14,7 +14,7 @@
 use super::affine::{Affine, StateSet};
 use super::closed_loop::{possible_commands, ClosedLoop};
 use super::interval::Interval;
-use super::spec::{BoundsMethod, SetKind};
+use super::spec::{BoundsMethod, DecisionSplit, SetKind};
 use super::verdict::{Reason, SplitHint, Stats};
 use std::time::Instant;
 
@@ -218,18 +218,23 @@ pub fn prove_traced(
     Proof::Safe
 }
 
-/// Pieces of a set's box hull, bisected where the decision is open, at most this many.
-const DECISION_PIECES: usize = 16;
 
-/// Commands possible over a box of states (observations evaluated with intervals).
-fn choices_on_box(cl: &ClosedLoop, b: &[Interval], prev: usize) -> Vec<usize> {
+/// Commands possible over a box of states (observations evaluated as affine forms),
+/// and how strongly the network's inputs move with each state over the box: the sum
+/// over observations of |∂obs/∂x_d| · rad(x_d) / scale (the coefficient of the piece's
+/// symbol d). Bisecting the dimension with the largest value cuts the decision's
+/// input range the most.
+fn choices_on_box(cl: &ClosedLoop, b: &[Interval], prev: usize) -> (Vec<usize>, Vec<f64>) {
     let spec = &cl.spec;
     // Observations as affine forms over the piece (one symbol per state), so the
     // network bounds see how the observations move together.
     let piece = StateSet::from_box(b);
     let forms: Vec<Affine> = spec.observations.iter().map(|o| piece.eval_affine(&o.expr)).collect();
     let bounds = cl.bound_outputs_affine(prev, &forms, BoundsMethod::Symbolic);
-    possible_commands(&bounds, spec.decision)
+    let sensitivity = (0..b.len())
+        .map(|d| forms.iter().enumerate().map(|(j, f)| (f.coeff(d) / spec.scale[j]).abs()).sum::<f64>())
+        .collect();
+    (possible_commands(&bounds, spec.decision), sensitivity)
 }
 
 /// For each command in `choices`, the part of `set` on which it may be chosen. When a
@@ -245,20 +250,25 @@ fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: 
     if hull.iter().any(|i| !i.is_bounded()) {
         return choices.iter().map(|&c| (c, set.clone())).collect();
     }
-    // Bisect ambiguous pieces (widest dimension relative to the hull) up to the limit.
-    let mut pieces: Vec<(Vec<Interval>, Vec<usize>)> = vec![(hull.clone(), choices.to_vec())];
-    while pieces.len() < DECISION_PIECES {
-        let Some(k) = pieces.iter().position(|(_, ch)| ch.len() > 1) else { break };
-        let (b, _) = pieces.swap_remove(k);
+    // Bisect ambiguous pieces up to the limit, each along the state the option names:
+    // the one the network's inputs are most sensitive to over the piece, or the widest
+    // relative to the hull. Neither wins everywhere (see BENCHMARKS.md).
+    let (_, first_sens) = choices_on_box(cl, &hull, prev);
+    let mut pieces: Vec<(Vec<Interval>, Vec<usize>, Vec<f64>)> = vec![(hull.clone(), choices.to_vec(), first_sens)];
+    while pieces.len() < cl.spec.engine.decision_pieces as usize {
+        let Some(k) = pieces.iter().position(|(_, ch, _)| ch.len() > 1) else { break };
+        let (b, _, sens) = pieces.swap_remove(k);
+        let score = |i: usize| match cl.spec.engine.decision_split {
+            DecisionSplit::Sensitivity => sens[i],
+            DecisionSplit::Widest if hull[i].width() > 0.0 => b[i].width() / hull[i].width(),
+            DecisionSplit::Widest => 0.0,
+        };
         let d = (0..b.len())
-            .max_by(|&i, &j| {
-                let wi = if hull[i].width() > 0.0 { b[i].width() / hull[i].width() } else { 0.0 };
-                let wj = if hull[j].width() > 0.0 { b[j].width() / hull[j].width() } else { 0.0 };
-                wi.partial_cmp(&wj).unwrap_or(std::cmp::Ordering::Equal)
-            })
+            .filter(|&i| b[i].width() > 0.0)
+            .max_by(|&i, &j| score(i).partial_cmp(&score(j)).unwrap_or(std::cmp::Ordering::Equal))
             .unwrap_or(0);
-        if !(b[d].width() > 0.0) {
-            pieces.push((b, choices.to_vec()));
+        if !(b[d].width() > 0.0) || !(score(d) > 0.0) {
+            pieces.push((b, choices.to_vec(), sens));
             break;
         }
         let (lo, hi) = b[d].bisect();
@@ -266,14 +276,15 @@ fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: 
             let mut nb = b.clone();
             nb[d] = half;
             // A piece never allows more than its parent: intersect with the choices.
-            let ch: Vec<usize> = choices_on_box(cl, &nb, prev).into_iter().filter(|c| choices.contains(c)).collect();
-            pieces.push((nb, ch));
+            let (ch, s) = choices_on_box(cl, &nb, prev);
+            let ch: Vec<usize> = ch.into_iter().filter(|c| choices.contains(c)).collect();
+            pieces.push((nb, ch, s));
         }
     }
     choices
         .iter()
         .filter_map(|&c| {
-            let mine: Vec<&Vec<Interval>> = pieces.iter().filter(|(_, ch)| ch.contains(&c)).map(|(b, _)| b).collect();
+            let mine: Vec<&Vec<Interval>> = pieces.iter().filter(|(_, ch, _)| ch.contains(&c)).map(|(b, _, _)| b).collect();
             if mine.is_empty() {
                 return None; // ruled out on every piece
             }

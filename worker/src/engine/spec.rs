@@ -179,6 +179,16 @@ pub enum BoundsMethod {
     Portfolio,
 }
 
+/// Which state a branch's box is bisected along when the decision on it is open.
+#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum DecisionSplit {
+    /// The state the network's inputs move with most over the piece.
+    Sensitivity,
+    /// The widest state relative to the branch's box (every state in turn).
+    Widest,
+}
+
 /// Tuning knobs of the one-cell engine. Every field has a documented default.
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 #[serde(deny_unknown_fields, default)]
@@ -203,6 +213,11 @@ pub struct EngineOptions {
     /// Live branches per period above which branches with the same command are joined
     /// into one set. Default 8.
     pub join_above: u32,
+    /// Most pieces a branch's box is cut into to find where each open command may be
+    /// chosen (1 keeps the whole set for every open command). Default 16.
+    pub decision_pieces: u32,
+    /// How those pieces are cut. Default `sensitivity`.
+    pub decision_split: DecisionSplit,
     /// Simulated trajectories tried by the falsifier per cell. Default 24.
     pub falsify_samples: u32,
     /// Fixed steps per period of the falsifier's simulation. Default 50.
@@ -221,6 +236,8 @@ impl Default for EngineOptions {
             node_budget: 4000,
             time_budget_s: 20.0,
             join_above: 8,
+            decision_pieces: 16,
+            decision_split: DecisionSplit::Sensitivity,
             falsify_samples: 24,
             sim_steps: 50,
         }
@@ -651,6 +668,7 @@ fn check_engine(o: &EngineOptions, e: &mut Vec<SpecError>) {
     range("node_budget", o.node_budget as f64, 1.0, 1e7);
     range("time_budget_s", o.time_budget_s, 0.001, 86400.0);
     range("join_above", o.join_above as f64, 1.0, 1e6);
+    range("decision_pieces", o.decision_pieces as f64, 1.0, 4096.0);
     range("falsify_samples", o.falsify_samples as f64, 0.0, 100_000.0);
     range("sim_steps", o.sim_steps as f64, 1.0, 100_000.0);
 }

@@ -1,0 +1,206 @@
+//! The demo scenarios exercise every kind of verdict, and the rover's bank really
+//! switches networks.
+//!
+//! For each committed scenario (`demo/*/spec.json`), a row of cells at a moderate depth is
+//! decided by the engine (proof, then falsifier). Checked:
+//! - some cells are proven safe, some are unsafe with a counterexample, some inconclusive;
+//! - every counterexample is re-checked by the engine's validated re-check, and replayed
+//!   outside the engine by `tests/reference/replay_demo_counterexamples.py`: onnxruntime
+//!   (a reference ONNX runtime) must pick the recorded command at every period, and an
+//!   independent RK4 integration must enter the unsafe set;
+//! - no cell proven safe holds a simulated unsafe trajectory (sampling concrete
+//!   trajectories, common practice for checking enclosures);
+//! - along rover trajectories the network in charge changes (the bank is used), with
+//!   onnxruntime agreeing on every decision.
+
+use serde_json::{json, Value};
+use std::collections::BTreeSet;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use tessera_worker::engine::check::check_cell;
+use tessera_worker::engine::closed_loop::ClosedLoop;
+use tessera_worker::engine::falsify::{self, Candidate, Rng};
+use tessera_worker::engine::interval::Interval;
+use tessera_worker::engine::spec::parse_spec;
+use tessera_worker::engine::verdict::VerdictKind;
+
+fn repo_root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).parent().expect("worker/ has a parent").to_path_buf()
+}
+
+fn load(rel: &str) -> (ClosedLoop, PathBuf) {
+    let path = repo_root().join(rel);
+    let text = std::fs::read_to_string(&path).unwrap();
+    let spec = parse_spec(&text).unwrap_or_else(|e| panic!("{rel}: {e:?}"));
+    let nets = ClosedLoop::load_networks(&spec, path.parent().unwrap()).unwrap();
+    (ClosedLoop::new(spec, nets).unwrap(), path)
+}
+
+/// The envelope cut into `parts[d]` equal pieces along state d, keeping only the pieces
+/// whose index along d is in `keep[d]` (None: all).
+fn grid(env: &[Interval], parts: &[usize], keep: &[Option<&[usize]>]) -> Vec<Vec<Interval>> {
+    let mut cells = vec![Vec::new()];
+    for (d, iv) in env.iter().enumerate() {
+        let n = parts[d];
+        let w = (iv.hi() - iv.lo()) / n as f64;
+        let idx: Vec<usize> = match keep[d] {
+            Some(i) => i.to_vec(),
+            None => (0..n).collect(),
+        };
+        let mut next = Vec::new();
+        for c in &cells {
+            for &i in &idx {
+                let lo = iv.lo() + w * i as f64;
+                let hi = if i + 1 == n { iv.hi() } else { iv.lo() + w * (i + 1) as f64 };
+                let mut c2 = c.clone();
+                c2.push(Interval::new(lo, hi));
+                next.push(c2);
+            }
+        }
+        cells = next;
+    }
+    cells
+}
+
+/// A closed-loop run with random noise and disturbances in their ranges (or at their
+/// ends), simulated in f64 by the engine's own runner; returns the run with the commands
+/// the controller picked.
+fn random_run(cl: &ClosedLoop, cell: &[Interval], rng: &mut Rng, extreme: bool) -> Candidate {
+    let spec = &cl.spec;
+    let pick = |i: Interval, r: &mut Rng| if extreme { if r.unit() < 0.5 { i.lo() } else { i.hi() } } else { r.within(i) };
+    let x0: Vec<f64> = cell.iter().map(|i| rng.within(*i)).collect();
+    let h = spec.horizon as usize;
+    let noise = (0..h).map(|_| spec.observations.iter().map(|o| pick(o.noise, rng)).collect()).collect();
+    let dist = (0..h).map(|_| spec.disturbance_ranges.iter().map(|d| pick(*d, rng)).collect()).collect();
+    let mut cand = Candidate {
+        x0,
+        initial_command: spec.initial_commands[0],
+        dist,
+        noise,
+        commands: vec![0; h],
+        trajectory: Vec::new(),
+        entry_time: 0.0,
+        region: 0,
+    };
+    let (trajectory, commands, hit) = falsify::replay(cl, &cand);
+    cand.trajectory = trajectory;
+    cand.region = hit.map(|(_, r)| r).unwrap_or(usize::MAX);
+    cand.entry_time = hit.map(|(t, _)| t).unwrap_or(f64::NAN);
+    cand.commands = commands;
+    cand
+}
+
+fn as_run(cl: &ClosedLoop, c: &Candidate) -> Value {
+    let names: Vec<&str> = cl.spec.commands.iter().map(|c| c.name.as_str()).collect();
+    json!({
+        "x0": c.x0,
+        "initial_command": names[c.initial_command],
+        "noise": c.noise[..c.commands.len()],
+        "disturbances": c.dist[..c.commands.len()],
+        "commands": c.commands.iter().map(|&k| names[k]).collect::<Vec<_>>(),
+    })
+}
+
+/// Runs the Python replay; fails loudly (never skips) when python3 or a package is missing.
+fn python_replay(spec_path: &Path, runs: &[Value]) -> Vec<Value> {
+    let script = repo_root().join("tests/reference/replay_demo_counterexamples.py");
+    let mut child = Command::new("python3")
+        .arg(&script)
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap_or_else(|e| panic!("cannot run python3 {}: {e}", script.display()));
+    let body = json!({"spec": spec_path, "runs": runs}).to_string();
+    std::io::Write::write_all(child.stdin.as_mut().unwrap(), body.as_bytes()).unwrap();
+    drop(child.stdin.take());
+    let out = child.wait_with_output().unwrap();
+    assert!(out.status.success(), "{} failed:\n{}", script.display(), String::from_utf8_lossy(&out.stderr));
+    let v: Value = serde_json::from_slice(&out.stdout).expect("the replay prints JSON");
+    v["runs"].as_array().unwrap().clone()
+}
+
+struct Outcome {
+    safe: usize,
+    unsafe_: usize,
+    inconclusive: usize,
+    /// Counterexample runs and sampled runs, replayed outside the engine.
+    replays: Vec<Value>,
+}
+
+fn decide_row(rel: &str, cells: &[Vec<Interval>]) -> (ClosedLoop, Outcome) {
+    let (cl, path) = load(rel);
+    let mut rng = Rng::new(7);
+    let (mut safe, mut unsafe_, mut inconclusive) = (0, 0, 0);
+    let mut cx_runs = Vec::new();
+    let mut sampled_runs = Vec::new();
+    for cell in cells {
+        let v = check_cell(&cl, cell);
+        match v.verdict {
+            VerdictKind::Safe => {
+                safe += 1;
+                for i in 0..100 {
+                    let run = random_run(&cl, cell, &mut rng, i % 2 == 0);
+                    assert!(run.entry_time.is_nan(), "{rel}: cell {cell:?} proven safe, but a simulated run enters unsafe region {} at t = {}", run.region, run.entry_time);
+                    if i < 4 {
+                        sampled_runs.push(as_run(&cl, &run));
+                    }
+                }
+            }
+            VerdictKind::Unsafe => {
+                unsafe_ += 1;
+                let cx = v.counterexample.expect("an unsafe verdict carries its counterexample");
+                let cand = falsify::candidate_from(&cl, &cx).unwrap();
+                assert!(falsify::recheck(&cl, &cand).is_some(), "{rel}: counterexample of {cell:?} fails the validated re-check");
+                cx_runs.push(as_run(&cl, &cand));
+            }
+            _ => inconclusive += 1,
+        }
+    }
+    let n_cx = cx_runs.len();
+    let mut runs = cx_runs;
+    runs.extend(sampled_runs);
+    let replays = python_replay(&path, &runs);
+    for (i, r) in replays.iter().enumerate() {
+        assert_eq!(r["commands_agree"], json!(true), "{rel}: run {i}: onnxruntime picks another command ({r})");
+        if i < n_cx {
+            assert!(r["unsafe_time"].is_number(), "{rel}: counterexample {i} does not enter the unsafe set when replayed outside the engine ({r})");
+        }
+    }
+    (cl, Outcome { safe, unsafe_, inconclusive, replays })
+}
+
+#[test]
+fn lander_cells_of_every_kind() {
+    let (cl, _) = load("demo/lander/spec.json");
+    // Depth 6 (8 × 8 cells over h and v): the lowest and the highest altitude band.
+    let cells = grid(&cl.envelope(), &[8, 8], &[Some(&[0, 7]), None]);
+    let (_, o) = decide_row("demo/lander/spec.json", &cells);
+    println!("lander: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
+    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "lander: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
+}
+
+#[test]
+fn rover_cells_of_every_kind_and_the_bank_switches() {
+    let (cl, _) = load("demo/rover/spec.json");
+    // Depth 9 over (py, th, px): a column of 8 cells across the aisle (py), at one
+    // heading band (th, 1/8) and one start band (px, 1/8); v unsplit.
+    let th_band = 3; // th ∈ [−0.05, 0]
+    let cells = grid(&cl.envelope(), &[8, 8, 8, 1], &[Some(&[0]), None, Some(&[th_band]), None]);
+    let (cl, o) = decide_row("demo/rover/spec.json", &cells);
+    println!("rover: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
+    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "rover: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
+    // The bank: networks in charge along the replayed runs.
+    let mut used = BTreeSet::new();
+    let mut switching_runs = 0;
+    for r in &o.replays {
+        let nets: Vec<u64> = r["networks"].as_array().unwrap().iter().map(|v| v.as_u64().unwrap()).collect();
+        used.extend(nets.iter().copied());
+        if nets.windows(2).any(|w| w[0] != w[1]) {
+            switching_runs += 1;
+        }
+    }
+    println!("rover: {} replayed runs, {} switch networks, networks used {:?}", o.replays.len(), switching_runs, used);
+    assert!(switching_runs > 0, "no rover run switched networks");
+    assert!(used.len() >= 3, "rover runs used only networks {used:?} of {}", cl.spec.commands.len());
+}
