@@ -47,7 +47,7 @@ pub struct DemoOptions {
     #[arg(long, default_value_t = 1)]
     pub threads: usize,
     /// Cap on the scenarios' refinement depth, so the demo ends in minutes.
-    #[arg(long, default_value_t = 8)]
+    #[arg(long, default_value_t = 10)]
     pub max_depth: u32,
     /// Which scenarios to run (default: all).
     #[arg(long, value_delimiter = ',')]
