@@ -12,8 +12,9 @@
 //! - the safe→unsafe volume of the diff equals a recount from the two campaigns' leaf
 //!   boxes: the real-number overlap (widths over envelope widths) of every leaf safe in
 //!   A with every leaf of B whose counterexample replayed;
-//! - the client's `gate --no-new-unsafe` fails B and passes C (same controller as A: a
-//!   cell proven safe cannot hold a sound counterexample under the same model).
+//! - the client's `gate --no-new-unsafe` (and the pipeline's `gate.py`) fails B and passes
+//!   C (same controller as A: a cell proven safe cannot hold a sound counterexample under
+//!   the same model).
 
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
@@ -222,6 +223,18 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
     assert!(md.status.success());
     let md = String::from_utf8_lossy(&md.stdout);
     assert!(md.contains("## Changes since campaign") && md.contains("Previously safe, now unsafe"), "{md}");
+
+    // The training pipeline's gate example does the same against the live server.
+    let gate_py = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/pipeline/gate.py");
+    let g = Command::new("python3")
+        .arg(&gate_py)
+        .args(["--server", &url, "--min-safe", "0", "--poll-s", "0.3", "--timeout-s", "240", "--follow-up", &a, "--no-new-unsafe", "--spec"])
+        .arg(&spec_b)
+        .env("TESSERA_TOKEN", &admin)
+        .output()
+        .expect("python3 must be installed");
+    assert_eq!(g.status.code(), Some(1), "pipeline gate: {}", text(&g));
+    assert!(String::from_utf8_lossy(&g.stdout).contains("is unsafe now"), "{}", text(&g));
 
     // Follow-up C with the original controller: nothing proven safe before is unsafe now.
     let c = submit(&spec_a, Some(&a));
