@@ -12,9 +12,10 @@
 //! 3. campaign B from the root with the retrained bank, to the end;
 //! 4. campaign B' with the retrained bank as a follow-up of A, to the end.
 //!
-//! Printed: for B and B', the time and the number of results until the proven-safe
-//! fraction first reached the lower of the two final safe fractions, the time to the
-//! end, and B' against A (the exact diff summary). Coverage is polled every 50 ms.
+//! Printed: for B and B', the time until the proven-safe fraction first reached 50 %,
+//! 90 % and 100 % of the target (the lower of the two final safe fractions), with the
+//! number of results by then, the time to the end, and B' against A (the exact diff
+//! summary). Coverage is polled every 50 ms.
 
 use serde_json::Value;
 use std::path::{Path, PathBuf};
@@ -184,12 +185,18 @@ async fn main() -> anyhow::Result<()> {
     );
     println!("campaign A (committed bank, from the root): {:.1} s, {} results, proven safe {:.4}", a.end().0, a.end().1, a.final_safe());
     println!("target proven-safe fraction (lower of the two final ones): {target:.4}");
-    println!("| run | time to reach target | results to reach target | time to end | results to end | final safe |");
+    println!("| run | 50 % of target | 90 % of target | target reached (results) | end (results) | final safe |");
     println!("|---|---:|---:|---:|---:|---:|");
     for (name, t) in [("retrained bank from the root", &b_root), ("retrained bank as a follow-up of A", &b_follow)] {
-        let (rt, rn) = t.reach(target).map(|(s, n)| (format!("{s:.1} s"), n.to_string())).unwrap_or(("—".into(), "—".into()));
+        let at = |f: f64| t.reach(f * target).map(|(s, n)| (format!("{s:.1} s"), n.to_string())).unwrap_or(("—".into(), "—".into()));
+        let (h, _) = at(0.5);
+        let (n, _) = at(0.9);
+        let (rt, rn) = at(1.0);
         let (et, en) = t.end();
-        println!("| {name} | {rt} | {rn} | {et:.1} s | {en} | {:.4} |", t.final_safe());
+        println!("| {name} | {h} | {n} | {rt} ({rn}) | {et:.1} s ({en}) | {:.4} |", t.final_safe());
+    }
+    if target <= 0.0 {
+        println!("nothing was proven safe: the times to reach the target say nothing; compare the times to the end");
     }
     let sm = &diff["summary"];
     println!(

@@ -268,3 +268,35 @@ pub async fn changes(store: &Store, id: &str, against: Option<&str>, rows: usize
         "rows_truncated": (d.pieces.len() as u64) < d.piece_count,
     }))
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn info(envelope: Vec<[f64; 2]>, split: Vec<usize>) -> CampaignInfo {
+        CampaignInfo {
+            id: "earlier".into(),
+            spec_hash: String::new(),
+            states: vec!["h".into(), "v".into()],
+            split_envelope: split.iter().map(|&k| envelope[k]).collect(),
+            envelope,
+            split,
+            max_depth: 4,
+            refine_unsafe: false,
+        }
+    }
+
+    #[test]
+    fn envelopes_must_match_bit_for_bit() {
+        let a = info(vec![[0.0, 1.0], [-1.0, 1.0]], vec![0]);
+        assert!(check_compatible(&a, &a).is_ok());
+        // -0.0 == 0.0 as numbers, but not as bits: refused, naming the state.
+        let b = info(vec![[-0.0, 1.0], [-1.0, 1.0]], vec![0]);
+        assert_eq!(check_compatible(&a, &b).unwrap_err().field.as_deref(), Some("envelope.h"));
+        // A non-split state's interval counts too.
+        let b = info(vec![[0.0, 1.0], [-1.0, 2.0]], vec![0]);
+        assert_eq!(check_compatible(&a, &b).unwrap_err().field.as_deref(), Some("envelope.v"));
+        let b = info(vec![[0.0, 1.0], [-1.0, 1.0]], vec![1]);
+        assert_eq!(check_compatible(&a, &b).unwrap_err().field.as_deref(), Some("refinement.split"));
+    }
+}
