@@ -155,7 +155,7 @@ async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
         60,
         u64::MAX / 4,
         spec(&sha).to_string().as_bytes(),
-        tessera_server::campaigns::CreateOptions { priority: 0, initial_depth: 14 },
+        tessera_server::campaigns::CreateOptions { priority: 0, initial_depth: 14, follow_up: None },
     )
     .await
     .map_err(|e| anyhow::anyhow!(e.detail))?;

@@ -101,7 +101,8 @@ pub fn routes() -> Vec<Route> {
         r(Method::GET, "/api/v1/models/{sha256}", ReadOrWork, "Download a model by its sha256", &[], B::None, "application/octet-stream", || get(get_model)),
         r(Method::GET, "/api/v1/campaigns", Read, "List campaigns", &[("state", "only campaigns in this state")], B::None, JSON, || get(list_campaigns)),
         r(Method::POST, "/api/v1/campaigns", Submit, "Create a campaign; the body is the spec JSON",
-            &[("priority", "integer, higher leases first (default 0)"), ("initial_depth", "cut the envelope uniformly to this depth first (default 0, at most 16)")],
+            &[("priority", "integer, higher leases first (default 0)"), ("initial_depth", "cut the envelope uniformly to this depth first (default 0, at most 16)"),
+              ("follow_up", "id of a finished campaign over the same envelope and split states: start from its cells instead of the root")],
             B::Json("Spec"), JSON, || post(create_campaign)),
         r(Method::GET, "/api/v1/campaigns/{id}", Read, "One campaign", &[], B::None, JSON, || get(get_campaign)),
         r(Method::GET, "/api/v1/campaigns/{id}/spec", ReadOrWork, "The campaign's canonical spec (hash in the X-Tessera-Spec-Hash header)", &[], B::None, JSON, || get(get_spec)),
@@ -122,6 +123,10 @@ pub fn routes() -> Vec<Route> {
             &[("limit", "how many, 1..1000 (default 20)")], B::None, JSON, || get(recent_results)),
         r(Method::GET, "/api/v1/campaigns/{id}/history", Read, "Proven-safe, unsafe and unresolved fractions of the envelope over time",
             &[("points", "number of equal time steps, 1..1000 (default 100)")], B::None, JSON, || get(history)),
+        r(Method::GET, "/api/v1/campaigns/{id}/changes", Read, "Exact coverage diff against the campaign this one follows up (or another): volume per (status before, status now)",
+            &[("against", "campaign to compare with (default: the one this campaign follows up)"),
+              ("rows", "also return up to this many pieces for a map, 0..100000 (default 0)")],
+            B::None, JSON, || get(changes)),
         r(Method::GET, "/api/v1/campaigns/{id}/report", Read, "Campaign report (JSON)", &[], B::None, JSON, || get(report_json)),
         r(Method::GET, "/api/v1/campaigns/{id}/report.md", Read, "Campaign report (Markdown)", &[], B::None, "text/markdown; charset=utf-8", || get(report_md)),
         r(Method::POST, "/api/v1/leases", Work, "Lease a batch of cells", &[], B::Json("LeaseRequest"), JSON, || post(lease)),
@@ -344,10 +349,15 @@ async fn list_campaigns(State(st): State<AppState>, Q(q): Q<ListQuery>) -> ApiRe
 struct CreateQuery {
     priority: Option<i64>,
     initial_depth: Option<u32>,
+    follow_up: Option<String>,
 }
 
 async fn create_campaign(State(st): State<AppState>, Q(q): Q<CreateQuery>, RawBody(body): RawBody) -> ApiResult<Response> {
-    let opts = CreateOptions { priority: q.priority.unwrap_or(0), initial_depth: q.initial_depth.unwrap_or(0) };
+    let opts = CreateOptions {
+        priority: q.priority.unwrap_or(0),
+        initial_depth: q.initial_depth.unwrap_or(0),
+        follow_up: q.follow_up.as_deref(),
+    };
     let c = campaigns::create(&st.store, st.config.max_depth, st.config.max_cells_per_campaign, &body, opts).await?;
     Ok((StatusCode::CREATED, Json(c)).into_response())
 }
@@ -455,6 +465,21 @@ async fn history(State(st): State<AppState>, P(id): P, Q(q): Q<HistoryQuery>) ->
         _ => return Err(ApiError::bad_request(format!("points must be between 1 and {}", campaigns::MAX_HISTORY_POINTS)).field("points")),
     };
     Ok(Json(campaigns::history(&st.store, &id, points).await?))
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ChangesQuery {
+    against: Option<String>,
+    rows: Option<usize>,
+}
+
+async fn changes(State(st): State<AppState>, P(id): P, Q(q): Q<ChangesQuery>) -> ApiResult<Json<Value>> {
+    let rows = match q.rows.unwrap_or(0) {
+        v @ 0..=crate::followup::MAX_CHANGE_ROWS => v,
+        _ => return Err(ApiError::bad_request(format!("rows must be between 0 and {}", crate::followup::MAX_CHANGE_ROWS)).field("rows")),
+    };
+    Ok(Json(crate::followup::changes(&st.store, &id, q.against.as_deref(), rows).await?))
 }
 
 /// The caller's role, so that the dashboard shows action buttons only to those who may act.

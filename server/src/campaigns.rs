@@ -23,16 +23,32 @@ pub const MAX_INITIAL_DEPTH: u32 = 16;
 
 /// Options of campaign creation besides the spec.
 #[derive(Debug, Clone, Copy, Default)]
-pub struct CreateOptions {
+pub struct CreateOptions<'a> {
     pub priority: i64,
     /// Cut the envelope uniformly to this depth before any cell is leased.
     pub initial_depth: u32,
+    /// Start from the leaves of this finished campaign instead of the root
+    /// (see [`crate::followup`]).
+    pub follow_up: Option<&'a str>,
+}
+
+/// A cell of a new campaign's initial tree.
+pub struct SeedCell {
+    pub id: String,
+    pub parent: Option<String>,
+    pub depth: u32,
+    pub cell: CellBox,
+    pub status: &'static str,
+    pub split_dim: Option<i64>,
+    /// For a re-joined cell of a follow-up: where to cut it if it is not proven safe.
+    pub coarse_dim: Option<i64>,
 }
 
 /// Validate `body` as a spec whose networks are uploaded models, and create the
-/// campaign with its root cell (or a uniform tree down to `initial_depth`).
-/// Every problem is a 4xx [`ApiError`] naming the JSON path at fault.
-pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &[u8], opts: CreateOptions) -> ApiResult<Value> {
+/// campaign with its root cell (or a uniform tree down to `initial_depth`, or, for a
+/// follow-up, the tree of the earlier campaign with its leaves pending again).
+/// Every problem is a 4xx [`ApiError`] naming the JSON path (or query field) at fault.
+pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &[u8], opts: CreateOptions<'_>) -> ApiResult<Value> {
     let text = std::str::from_utf8(body)
         .map_err(|e| ApiError::bad_request(format!("the spec must be UTF-8 JSON: {e}")))?;
     let spec = spec::parse_spec(text).map_err(ApiError::invalid_spec)?;
@@ -82,51 +98,19 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     let info = CampaignInfo::from_spec(&id, &hash, &spec);
     let now = now_ms();
 
-    // The initial tree: root, then uniform cuts down to `initial`.
-    struct Node {
-        id: String,
-        parent: Option<String>,
-        depth: u32,
-        cell: CellBox,
-        status: &'static str,
-        split_dim: Option<i64>,
+    if opts.follow_up.is_some() && initial > 0 {
+        return Err(ApiError::bad_request("a follow-up starts from the earlier campaign's cells: initial_depth must be 0")
+            .field("initial_depth"));
     }
-    let mut nodes = vec![Node {
-        id: uuid::Uuid::new_v4().to_string(),
-        parent: None,
-        depth: 0,
-        cell: info.split_envelope.clone(),
-        status: "pending",
-        split_dim: None,
-    }];
-    let mut frontier = vec![0usize];
-    for _ in 0..initial {
-        let mut next = Vec::new();
-        for k in frontier {
-            let Some(d) = refine::choose_dim(&nodes[k].cell, &info.split_envelope, None) else { continue };
-            let Some((a, b)) = refine::bisect(&nodes[k].cell, d) else { continue };
-            nodes[k].status = "split";
-            nodes[k].split_dim = Some(d as i64);
-            let (pid, depth) = (nodes[k].id.clone(), nodes[k].depth + 1);
-            for c in [a, b] {
-                next.push(nodes.len());
-                nodes.push(Node {
-                    id: uuid::Uuid::new_v4().to_string(),
-                    parent: Some(pid.clone()),
-                    depth,
-                    cell: c,
-                    status: "pending",
-                    split_dim: None,
-                });
-            }
-        }
-        frontier = next;
-    }
+    let nodes = match opts.follow_up {
+        Some(prev) => crate::followup::seed(store, prev, &info, max_cells).await?,
+        None => uniform_tree(&info, initial),
+    };
 
     let mut w = store.write().await?;
     sqlx::query(
-        "INSERT INTO campaigns (id, name, spec_json, spec_hash, state, priority, max_depth, created_at, updated_at)
-         VALUES (?, ?, ?, ?, 'running', ?, ?, ?, ?)",
+        "INSERT INTO campaigns (id, name, spec_json, spec_hash, state, priority, max_depth, created_at, updated_at, follow_up_of)
+         VALUES (?, ?, ?, ?, 'running', ?, ?, ?, ?, ?)",
     )
     .bind(&id)
     .bind(&spec.doc.name)
@@ -136,6 +120,7 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     .bind(spec.max_depth as i64)
     .bind(now)
     .bind(now)
+    .bind(opts.follow_up)
     .execute(&mut *w.tx)
     .await?;
     let mut counts: HashMap<&str, (i64, i64)> = ALL_STATUSES.iter().map(|s| (*s, (0, 0))).collect();
@@ -158,8 +143,8 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     }
     for chunk in nodes.chunks(400) {
         let sql = format!(
-            "INSERT INTO cells (id, campaign_id, parent_id, depth, box, status, split_dim, created_at, updated_at) VALUES {}",
-            vec!["(?, ?, ?, ?, ?, ?, ?, ?, ?)"; chunk.len()].join(", ")
+            "INSERT INTO cells (id, campaign_id, parent_id, depth, box, status, split_dim, coarse_dim, created_at, updated_at) VALUES {}",
+            vec!["(?, ?, ?, ?, ?, ?, ?, ?, ?, ?)"; chunk.len()].join(", ")
         );
         let mut q = sqlx::query(&sql);
         for n in chunk {
@@ -171,6 +156,7 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
                 .bind(refine::encode_box(&n.cell))
                 .bind(n.status)
                 .bind(n.split_dim)
+                .bind(n.coarse_dim)
                 .bind(now)
                 .bind(now);
         }
@@ -178,6 +164,44 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     }
     w.commit().await?;
     get(store, &id).await
+}
+
+/// The root, then uniform cuts down to `initial` (widest relative dimension first).
+fn uniform_tree(info: &CampaignInfo, initial: u32) -> Vec<SeedCell> {
+    let mut nodes = vec![SeedCell {
+        id: uuid::Uuid::new_v4().to_string(),
+        parent: None,
+        depth: 0,
+        cell: info.split_envelope.clone(),
+        status: "pending",
+        split_dim: None,
+        coarse_dim: None,
+    }];
+    let mut frontier = vec![0usize];
+    for _ in 0..initial {
+        let mut next = Vec::new();
+        for k in frontier {
+            let Some(d) = refine::choose_dim(&nodes[k].cell, &info.split_envelope, None) else { continue };
+            let Some((a, b)) = refine::bisect(&nodes[k].cell, d) else { continue };
+            nodes[k].status = "split";
+            nodes[k].split_dim = Some(d as i64);
+            let (pid, depth) = (nodes[k].id.clone(), nodes[k].depth + 1);
+            for c in [a, b] {
+                next.push(nodes.len());
+                nodes.push(SeedCell {
+                    id: uuid::Uuid::new_v4().to_string(),
+                    parent: Some(pid.clone()),
+                    depth,
+                    cell: c,
+                    status: "pending",
+                    split_dim: None,
+                    coarse_dim: None,
+                });
+            }
+        }
+        frontier = next;
+    }
+    nodes
 }
 
 /// Check that `bytes` is a model, for upload.
@@ -199,12 +223,13 @@ fn campaign_json(r: &sqlx::sqlite::SqliteRow, counts: &HashMap<String, (i64, i64
         "created_at_ms": r.try_get::<i64, _>("created_at")?,
         "updated_at_ms": r.try_get::<i64, _>("updated_at")?,
         "finished_at_ms": r.try_get::<Option<i64>, _>("finished_at")?,
+        "follow_up_of": r.try_get::<Option<String>, _>("follow_up_of")?,
         "cells": cells,
     }))
 }
 
 const CAMPAIGN_COLS: &str =
-    "id, name, state, priority, spec_hash, max_depth, results_count, created_at, updated_at, finished_at, first_result_at, last_result_at";
+    "id, name, state, priority, spec_hash, max_depth, results_count, created_at, updated_at, finished_at, first_result_at, last_result_at, follow_up_of";
 
 /// One campaign's summary; 404 when unknown.
 pub async fn get(store: &Store, id: &str) -> ApiResult<Value> {
@@ -464,6 +489,19 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
     .await?;
     let engines: Vec<String> = engines.into_iter().map(|e| e.unwrap_or_else(|| "unreported".into())).collect();
     let cex = counterexamples(store, id, 100, 0).await?;
+    // A follow-up's report says what changed since the campaign it follows up.
+    let changes = match campaign["follow_up_of"].as_str() {
+        Some(_) => {
+            let mut c = crate::followup::changes(store, id, None, 0).await?;
+            if let Some(o) = c.as_object_mut() {
+                for k in ["rows", "rows_total", "rows_truncated", "columns", "statuses", "envelope", "split_states"] {
+                    o.remove(k);
+                }
+            }
+            c
+        }
+        None => Value::Null,
+    };
     Ok(json!({
         "report_version": 1,
         "caution": CAUTION,
@@ -482,6 +520,7 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
         "split": doc["refinement"]["split"],
         "coverage": cov,
         "counterexamples": cex["counterexamples"],
+        "changes": changes,
     }))
 }
 
@@ -558,6 +597,33 @@ pub fn report_markdown(r: &Value) -> String {
         cov["split_cells"], cov["results"]
     );
     let _ = writeln!(s, "A fraction counts a cell at depth d as 2^-d of the envelope: cells are halves of halves.\n");
+    let ch = &r["changes"];
+    if ch.is_object() {
+        let _ = writeln!(s, "## Changes since campaign `{}`\n", ch["against"].as_str().unwrap_or(""));
+        if ch["final"] != true {
+            let _ = writeln!(s, "Provisional: one of the two campaigns has not finished; open cells count as pending or leased.\n");
+        }
+        let _ = writeln!(s, "| Before | Now | Fraction | Exact |\n|---|---|---:|---|");
+        for t in ch["transitions"].as_array().into_iter().flatten() {
+            let _ = writeln!(
+                s,
+                "| {} | {} | {:.6} | {} |",
+                t["from"].as_str().unwrap_or(""),
+                t["to"].as_str().unwrap_or(""),
+                t["fraction"].as_f64().unwrap_or(0.0),
+                t["reduced"].as_str().unwrap_or("")
+            );
+        }
+        let sm = &ch["summary"];
+        let _ = writeln!(
+            s,
+            "\nPreviously safe, now unsafe: {}. No longer proven safe: {}. Newly proven safe: {}.\n",
+            sm["safe_to_unsafe"]["reduced"].as_str().unwrap_or("?"),
+            sm["no_longer_safe"]["reduced"].as_str().unwrap_or("?"),
+            sm["newly_safe"]["reduced"].as_str().unwrap_or("?")
+        );
+        let _ = writeln!(s, "{}\n", ch["note"].as_str().unwrap_or(""));
+    }
     let cex = r["counterexamples"].as_array().cloned().unwrap_or_default();
     let _ = writeln!(s, "## Counterexamples ({} shown)\n", cex.len());
     if cex.is_empty() {

@@ -116,7 +116,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
             config.max_depth,
             config.max_cells_per_campaign,
             &body,
-            CreateOptions { priority: 0, initial_depth: depth.min(2) as u32 },
+            CreateOptions { priority: 0, initial_depth: depth.min(2) as u32, follow_up: None },
         )
         .await
         .map_err(|e| anyhow::anyhow!("{name}: {}", e.detail))?;

@@ -469,6 +469,8 @@ struct HeldCell {
     expires_at: i64,
     attempts: i64,
     leased_at: Option<i64>,
+    /// A follow-up's re-joined cell: cut here, into the earlier halves, unless safe.
+    coarse_dim: Option<usize>,
 }
 
 /// Accept a batch of results (each at most once, by lease id) and refine the cells.
@@ -503,7 +505,7 @@ pub async fn submit(
     let mut held: HashMap<String, HeldCell> = HashMap::new();
     for chunk in wanted.chunks(CHUNK) {
         let sql = format!(
-            "SELECT rowid, id, campaign_id, depth, box, lease_expires_at, attempts, leased_at, lease_id FROM cells
+            "SELECT rowid, id, campaign_id, depth, box, lease_expires_at, attempts, leased_at, lease_id, coarse_dim FROM cells
              WHERE status = 'leased' AND lease_id IN ({})",
             vec!["?"; chunk.len()].join(", ")
         );
@@ -526,6 +528,7 @@ pub async fn submit(
                     expires_at: r.try_get::<Option<i64>, _>(5)?.unwrap_or(0),
                     attempts: r.try_get(6)?,
                     leased_at: r.try_get(7)?,
+                    coarse_dim: r.try_get::<Option<i64>, _>(9)?.and_then(|d| usize::try_from(d).ok()),
                 },
             );
         }
@@ -618,7 +621,10 @@ pub async fn submit(
                 }
             }
             Outcome::Unsafe | Outcome::Inconclusive(_) => {
-                let wants_split = matches!(outcome, Outcome::Inconclusive(_)) || info.refine_unsafe;
+                // A re-joined cell of a follow-up that is not proven safe falls back to
+                // the earlier campaign's two halves, whatever the verdict.
+                let coarse = h.coarse_dim.filter(|&d| d < h.cell.len());
+                let wants_split = matches!(outcome, Outcome::Inconclusive(_)) || info.refine_unsafe || coarse.is_some();
                 let final_status = if matches!(outcome, Outcome::Unsafe) { "unsafe" } else { "unresolved" };
                 let hint = match &outcome {
                     Outcome::Inconclusive(Some(name)) => {
@@ -626,7 +632,7 @@ pub async fn submit(
                     }
                     _ => None,
                 };
-                match refine::choose_dim(&h.cell, &info.split_envelope, hint) {
+                match coarse.or_else(|| refine::choose_dim(&h.cell, &info.split_envelope, hint)) {
                     Some(d) if wants_split && h.depth < info.max_depth && can_split(&mut room) => {
                         match refine::bisect(&h.cell, d) {
                             Some((a, b)) => {

@@ -12,7 +12,10 @@ Checks (each exits non-zero with a message when it fails):
   2. below the threshold: --min-safe 0.8 -> exit 1;
   3. a wrong bearer token (HTTP 401) -> exit 2;
   4. a server that reports a different hash for an upload -> exit 2;
-  5. a campaign that ends cancelled -> exit 1.
+  5. a campaign that ends cancelled -> exit 1;
+  6. --follow-up c5 --no-new-unsafe with no safe volume turned unsafe -> exit 0, and the
+     campaign was created with the follow_up query parameter;
+  7. the same with 1/8 of the envelope turned from safe to unsafe -> exit 1.
 
 Usage: python3 tests/reference/check_gate.py REPO_ROOT
 """
@@ -24,6 +27,7 @@ import os
 import subprocess
 import sys
 import threading
+import urllib.parse
 
 
 def fail(msg):
@@ -36,7 +40,8 @@ sys.path.insert(0, os.path.join(root, "deploy", "pipeline"))
 import gate as G  # noqa: E402  (wire-format names)
 
 TOKEN = "test-token"
-STATE = {"safe": 0.75, "final": "done", "lie_about_hash": False, "models": {}, "campaigns": [], "polls": 0}
+STATE = {"safe": 0.75, "final": "done", "lie_about_hash": False, "models": {}, "campaigns": [], "polls": 0,
+         "queries": [], "safe_to_unsafe": "0/1"}
 
 
 class Handler(http.server.BaseHTTPRequestHandler):
@@ -65,7 +70,8 @@ class Handler(http.server.BaseHTTPRequestHandler):
             h = hashlib.sha256(data).hexdigest()
             STATE["models"][h] = data
             self.reply(201, {G.MODEL_SHA_FIELD: ("0" * 64) if STATE["lie_about_hash"] else h})
-        elif self.path == G.CAMPAIGNS_PATH:
+        elif urllib.parse.urlsplit(self.path).path == G.CAMPAIGNS_PATH:
+            STATE["queries"].append(urllib.parse.parse_qs(urllib.parse.urlsplit(self.path).query))
             STATE["campaigns"].append(json.loads(data))
             STATE["polls"] = 0
             self.reply(201, {G.CAMPAIGN_ID_FIELD: f"c{len(STATE['campaigns'])}"})
@@ -76,6 +82,8 @@ class Handler(http.server.BaseHTTPRequestHandler):
         if not self.authorized():
             return
         cid = f"c{len(STATE['campaigns'])}"
+        if self.path == G.CHANGES_PATH.format(id=cid):
+            return self.reply(200, {G.SUMMARY_FIELD: {G.SAFE_TO_UNSAFE_FIELD: {G.EXACT_FIELD: STATE["safe_to_unsafe"]}}})
         if self.path != G.COVERAGE_PATH.format(id=cid):
             return self.reply(404, {"error": "no route"})
         STATE["polls"] += 1
@@ -91,10 +99,10 @@ url = f"http://127.0.0.1:{server.server_address[1]}"
 spec_path = os.path.join(root, "demo", "rover", "spec.json")
 
 
-def run(min_safe, token=TOKEN):
+def run(min_safe, token=TOKEN, extra=()):
     r = subprocess.run(
         [sys.executable, os.path.join(root, "deploy", "pipeline", "gate.py"), "--server", url, "--spec", spec_path,
-         "--min-safe", str(min_safe), "--token", token, "--poll-s", "0.01", "--timeout-s", "20"],
+         "--min-safe", str(min_safe), "--token", token, "--poll-s", "0.01", "--timeout-s", "20", *extra],
         capture_output=True, text=True, timeout=60)
     return r.returncode, r.stdout + r.stderr
 
@@ -133,5 +141,17 @@ code, out = run(0.1)
 if code != 1:
     fail(f"expected exit 1 for a failed campaign, got {code}:\n{out}")
 
+STATE["final"] = "done"
+code, out = run(0.1, extra=["--follow-up", "c5", "--no-new-unsafe"])
+if code != 0:
+    fail(f"expected a pass with no new unsafe volume, got {code}:\n{out}")
+if STATE["queries"][-1].get(G.FOLLOW_UP_PARAM) != ["c5"]:
+    fail(f"the campaign was not created as a follow-up of c5: {STATE['queries'][-1]}")
+
+STATE["safe_to_unsafe"] = "1/8"
+code, out = run(0.1, extra=["--follow-up", "c6", "--no-new-unsafe"])
+if code != 1 or "1/8" not in out:
+    fail(f"expected exit 1 naming 1/8 of new unsafe volume, got {code}:\n{out}")
+
 server.shutdown()
-print("check_gate: 5 checks passed")
+print("check_gate: 7 checks passed")

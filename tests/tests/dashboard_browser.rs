@@ -444,6 +444,122 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     println!("dashboard browser test with {} in {:.1} s", chromium.display(), t0.elapsed().as_secs_f64());
 }
 
+/// Drive every pending cell of the running campaigns with `rule` (box → verdict word).
+fn drive_all(api: &Api, work: &str, rule: fn(f64, f64, f64, f64) -> &'static str) {
+    loop {
+        let leases = api.post("/api/v1/leases", work, &json!({"max": 64, "worker": "scripted"}));
+        let cells = leases["leases"].as_array().unwrap().clone();
+        if cells.is_empty() {
+            return;
+        }
+        let results: Vec<Value> = cells
+            .iter()
+            .map(|c| {
+                let iv = |k: &str, i: usize| c["box"][k][i].as_f64().unwrap();
+                let verdict = match rule(iv("h", 0), iv("h", 1), iv("v", 0), iv("v", 1)) {
+                    "safe" => json!({"verdict": "safe", "reason": "scripted"}),
+                    "unsafe" => json!({"verdict": "unsafe", "reason": "scripted", "counterexample": {"commands": ["on"]}}),
+                    _ => json!({"verdict": "inconclusive", "reason": "scripted", "split_hint": null}),
+                };
+                json!({"lease_id": c["lease_id"], "result": verdict})
+            })
+            .collect();
+        let r = api.post("/api/v1/results", work, &json!({"worker": "scripted", "results": results}));
+        assert_eq!(r["rejected"], 0, "{r}");
+    }
+}
+
+/// The changes view of a follow-up: the page draws as many pieces of each kind of
+/// change as the server's diff lists, with a legend and the table of transitions.
+#[test]
+fn dashboard_draws_the_changes_of_a_follow_up() {
+    let _chromium = chromium_path();
+    let rt = tokio::runtime::Runtime::new().expect("runtime");
+    let dir = tempfile::tempdir().expect("temp dir");
+    let server = rt
+        .block_on(tessera_server::start(tessera_server::Config::for_tests(dir.path().join("tessera.sqlite"))))
+        .expect("server starts");
+    let token = |r: Role| rt.block_on(server.state.store.create_token(r, "browser test")).expect("token");
+    let (sub, work, viewer) = (token(Role::Submitter), token(Role::Worker), token(Role::Viewer));
+    let api = Api { base: server.url() };
+    let upload = |tag: &str| -> String {
+        let bytes = tessera_server::model_check::testing::tiny_model(1, 2, tag);
+        let m: Value = ureq::post(&format!("{}/api/v1/models", api.base))
+            .set("Authorization", &format!("Bearer {sub}"))
+            .send_bytes(&bytes)
+            .expect("upload model")
+            .into_json()
+            .unwrap();
+        m["sha256"].as_str().unwrap().to_string()
+    };
+    let mut s = spec(&upload("before"));
+    s["refinement"]["max_depth"] = json!(4);
+    let a = api.post("/api/v1/campaigns", &sub, &s)["id"].as_str().unwrap().to_string();
+    // Before: the lower half of h is safe, the rest unresolved at max depth.
+    drive_all(&api, &work, |_, h1, _, _| if h1 <= 0.5 { "safe" } else { "inconclusive" });
+    let mut s = spec(&upload("after"));
+    s["refinement"]["max_depth"] = json!(4);
+    let b = api.post(&format!("/api/v1/campaigns?follow_up={a}"), &sub, &s)["id"].as_str().unwrap().to_string();
+    // Now: h ≤ 1/2 with v ≥ 0 unsafe (v < 0 still safe), h ≥ 3/4 newly safe, the rest as before.
+    drive_all(&api, &work, |h0, h1, v0, v1| {
+        if h1 <= 0.5 {
+            if v0 >= 0.0 {
+                "unsafe"
+            } else if v1 <= 0.0 {
+                "safe"
+            } else {
+                "inconclusive"
+            }
+        } else if h0 >= 0.75 {
+            "safe"
+        } else {
+            "inconclusive"
+        }
+    });
+    let ch = api.get(&format!("/api/v1/campaigns/{b}/changes?rows=50000"), &viewer);
+    assert_eq!(ch["final"], true, "{ch}");
+    let statuses: Vec<&str> = ch["statuses"].as_array().unwrap().iter().map(|s| s.as_str().unwrap()).collect();
+    let mut expected: std::collections::BTreeMap<&str, i64> =
+        ["same", "still-safe", "newly-safe", "lost-safe", "safe-unsafe"].iter().map(|k| (*k, 0)).collect();
+    for r in ch["rows"].as_array().unwrap() {
+        let (f, t) = (statuses[r[0].as_u64().unwrap() as usize], statuses[r[1].as_u64().unwrap() as usize]);
+        let kind = match (f == "safe", t) {
+            (true, "safe") => "still-safe",
+            (true, "unsafe") => "safe-unsafe",
+            (true, _) => "lost-safe",
+            (false, "safe") => "newly-safe",
+            _ => "same",
+        };
+        *expected.get_mut(kind).unwrap() += 1;
+    }
+    for k in ["same", "still-safe", "newly-safe", "safe-unsafe"] {
+        assert!(expected[k] > 0, "the scenario should show some '{k}' pieces: {expected:?}");
+    }
+    let expected = serde_json::to_value(&expected).unwrap();
+
+    let mut br = Browser::launch(&format!("{}/dashboard/campaigns/{b}#token={viewer}", api.base));
+    let drawn = br.wait_for(
+        "(() => { const d = document.getElementById('changes-map').dataset.drawn; return d ? JSON.parse(d) : null; })()",
+        15,
+        "the changes map",
+    );
+    assert_eq!(drawn, expected, "pieces drawn per kind of change");
+    assert_eq!(br.eval("document.getElementById('changes-view').hidden"), json!(false));
+    let rows = br.eval("document.querySelectorAll('#changes-table tbody tr').length");
+    assert_eq!(rows, json!(ch["transitions"].as_array().unwrap().len()));
+    let table = br.eval("document.getElementById('changes-table').textContent").as_str().unwrap().to_string();
+    assert!(table.contains(ch["summary"]["safe_to_unsafe"]["reduced"].as_str().unwrap()), "{table}");
+    let legend = br.eval("document.getElementById('changes-legend').textContent");
+    assert!(legend.as_str().unwrap().contains("was safe, now unsafe"), "{legend}");
+    assert_eq!(br.eval("document.getElementById('ch-against').textContent"), json!(a));
+    br.eval("document.getElementById('changes-view').scrollIntoView()");
+    let shot = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("dashboard-changes.png");
+    br.screenshot(&shot);
+    println!("screenshot of the changes view: {}", shot.display());
+    drop(br);
+    rt.block_on(server.stop()).expect("server stops");
+}
+
 /// Benchmark, not run by default (`cargo test -p tessera-tests --test dashboard_browser
 /// -- --ignored --nocapture`): the campaign page with about 100,000 leaf cells. Prints
 /// how long the page took to fetch and draw the map and to answer a hover; fails only

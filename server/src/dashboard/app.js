@@ -20,6 +20,18 @@
     pending: 'pending', leased: 'being checked', failed: 'failed (worker errors)',
   };
   const BAR_ORDER = ['safe', 'unsafe', 'unresolved', 'failed', 'leased', 'pending'];
+  // Changes of a follow-up, drawn least important first so that losses end on top.
+  const CHANGE_ORDER = ['same', 'still-safe', 'newly-safe', 'lost-safe', 'safe-unsafe'];
+  const CHANGE_LABEL = {
+    'same': 'not safe before nor now', 'still-safe': 'safe before and now', 'newly-safe': 'newly proven safe',
+    'lost-safe': 'was safe, now unresolved or open', 'safe-unsafe': 'was safe, now unsafe',
+  };
+  const CHANGES_MS = 10000;
+  const CHANGE_ROWS = 50000;
+  function changeKind(from, to) {
+    if (from === 'safe') return to === 'safe' ? 'still-safe' : (to === 'unsafe' ? 'safe-unsafe' : 'lost-safe');
+    return to === 'safe' ? 'newly-safe' : 'same';
+  }
   const css = getComputedStyle(document.documentElement);
   const COLOR = {};
   for (const s of SEVERITY) COLOR[s] = css.getPropertyValue('--' + s).trim() || '#999';
@@ -259,6 +271,9 @@
     M.lastFull = 0;
     M.cexCount = -1;
     M.historyAt = 0;
+    M.changesAt = 0;
+    M.changes = null;
+    $('changes-view').hidden = true;
     $('drawn').textContent = '';
     legend($('map-legend'), SEVERITY);
     await poll(refreshCampaign);
@@ -314,6 +329,11 @@
     renderHeader();
     renderAxes();
     renderRecent(recent.results);
+    if (c.follow_up_of && Date.now() - M.changesAt > CHANGES_MS) {
+      M.changes = await api(base + '/changes?rows=' + CHANGE_ROWS);
+      M.changesAt = Date.now();
+      renderChanges();
+    }
     if (M.dirty) drawMap();
     publishTiming();
   }
@@ -402,8 +422,8 @@
       ys.value = String(M.ay);
     }
   }
-  $('axis-x').addEventListener('change', (e) => { M.ax = Number(e.target.value); drawMap(); });
-  $('axis-y').addEventListener('change', (e) => { M.ay = Number(e.target.value); drawMap(); });
+  $('axis-x').addEventListener('change', (e) => { M.ax = Number(e.target.value); drawMap(); drawChanges(); });
+  $('axis-y').addEventListener('change', (e) => { M.ay = Number(e.target.value); drawMap(); drawChanges(); });
 
   function renderRecent(results) {
     const tbody = $('recent').tBodies[0];
@@ -546,6 +566,61 @@
       '. Black dots: starting points of counterexamples.';
     drawTrajectories();
     M.timing.draw_ms = Math.round(performance.now() - t0);
+  }
+
+  // The diff of a follow-up against the campaign it follows up: table and map.
+  function renderChanges() {
+    const ch = M.changes;
+    $('changes-view').hidden = false;
+    const a = $('ch-against');
+    a.textContent = ch.against;
+    a.href = '/dashboard/campaigns/' + encodeURIComponent(ch.against);
+    $('ch-note').textContent = (ch.final ? '' : 'Provisional: a campaign is still open; open cells count as pending. ') +
+      'Each row is the volume that had the first status in the earlier campaign and has the second now, exactly. ' +
+      'Unsafe volume is that of cells holding a re-checked counterexample.';
+    const tbody = $('changes-table').tBodies[0];
+    tbody.replaceChildren(...ch.transitions.map((t) => el('tr', { class: 'c-' + changeKind(t.from, t.to) },
+      el('td', {}, el('span', { class: 'state', text: t.from })),
+      el('td', {}, el('span', { class: 'state', text: t.to })),
+      el('td', { class: 'num', text: fmtPct(t.fraction) }),
+      el('td', { class: 'hash', text: t.reduced }))));
+    $('changes-legend').replaceChildren(...CHANGE_ORDER.map((k) => el('span', {}, el('i', { class: 'c-' + k }), CHANGE_LABEL[k])));
+    drawChanges();
+  }
+
+  function drawChanges() {
+    const ch = M.changes;
+    if (!ch || !M.states) return;
+    const cv = $('changes-map');
+    const { ctx, w, h } = setupCanvas(cv);
+    const ax = M.ax;
+    const ay = M.ay;
+    const f = axesFrame(ctx, w, h, padRange(M.envelope[ax] || [0, 1]), padRange(M.envelope[ay] || [0, 1]), M.states[ax] || '', M.states[ay] || '');
+    const dpr = window.devicePixelRatio || 1;
+    const snap = (v) => Math.round(v * dpr) / dpr;
+    const buckets = Object.fromEntries(CHANGE_ORDER.map((k) => [k, []]));
+    for (const r of ch.rows) buckets[changeKind(ch.statuses[r[0]], ch.statuses[r[1]])].push({ b: r.slice(3) });
+    const drawn = {};
+    ctx.save();
+    ctx.beginPath();
+    ctx.rect(f.m.l, f.m.t, f.pw, f.ph);
+    ctx.clip();
+    for (const k of CHANGE_ORDER) {
+      ctx.fillStyle = css.getPropertyValue('--ch-' + k).trim() || '#999';
+      for (const cell of buckets[k]) {
+        const [x0, x1] = cellIv(cell, ax);
+        const [y0, y1] = cellIv(cell, ay);
+        const px = snap(f.X(x0));
+        const py = snap(f.Y(y1));
+        ctx.fillRect(px, py, Math.max(snap(f.X(x1)) - px, 1 / dpr), Math.max(snap(f.Y(y0)) - py, 1 / dpr));
+      }
+      drawn[k] = buckets[k].length;
+    }
+    ctx.restore();
+    cv.dataset.drawn = JSON.stringify(drawn);
+    const other = M.states.filter((_, i) => i !== ax && i !== ay);
+    $('changes-map-note').textContent = ch.rows.length + ' pieces drawn' + (ch.rows_truncated ? ' (of ' + ch.rows_total + '; the rest are not shown)' : '') +
+      (other.length ? '; over ' + other.join(', ') + ' the most important change is on top' : '') + '.';
   }
 
   function drawTrajectories() {

@@ -38,6 +38,10 @@ enum Cmd {
         /// Higher priority campaigns lease first.
         #[arg(long, default_value_t = 0)]
         priority: i64,
+        /// Start from the cells of this finished campaign (same envelope and split
+        /// states) instead of the whole envelope.
+        #[arg(long, value_name = "CAMPAIGN_ID")]
+        follow_up: Option<String>,
     },
     /// Print a campaign's coverage.
     Status { id: String },
@@ -48,12 +52,22 @@ enum Cmd {
         #[arg(long, default_value_t = 2.0)]
         interval: f64,
     },
-    /// Exit 0 when the proven-safe fraction reaches --min-safe, 1 when the finished
-    /// campaign falls short, 2 on error. Waits for the campaign to end first.
+    /// Exit 0 when the proven-safe fraction reaches --min-safe (and, with
+    /// --no-new-unsafe, no volume proven safe by the campaign it follows up is unsafe
+    /// now), 1 when the finished campaign falls short, 2 on error. Waits for the
+    /// campaign to end first.
     Gate {
         id: String,
+        /// Least proven-safe fraction of the envelope, in [0, 1].
+        #[arg(long, required_unless_present = "no_new_unsafe")]
+        min_safe: Option<f64>,
+        /// Also fail when any volume that was safe in the earlier campaign (the one
+        /// this campaign follows up, or --against) is unsafe now.
         #[arg(long)]
-        min_safe: f64,
+        no_new_unsafe: bool,
+        /// The campaign to compare with for --no-new-unsafe (default: the one followed up).
+        #[arg(long, value_name = "CAMPAIGN_ID", requires = "no_new_unsafe")]
+        against: Option<String>,
         /// Seconds between polls while waiting.
         #[arg(long, default_value_t = 2.0)]
         interval: f64,
@@ -74,10 +88,12 @@ fn main() -> ExitCode {
     let cli = Cli::parse();
     let api = Api::new(&cli.server, &cli.token);
     let r = match cli.cmd {
-        Cmd::Submit { spec, priority } => submit(&api, &spec, priority),
+        Cmd::Submit { spec, priority, follow_up } => submit(&api, &spec, priority, follow_up.as_deref()),
         Cmd::Status { id } => status(&api, &id),
         Cmd::Wait { id, interval } => wait(&api, &id, interval, true).map(|_| ExitCode::SUCCESS),
-        Cmd::Gate { id, min_safe, interval } => gate(&api, &id, min_safe, interval),
+        Cmd::Gate { id, min_safe, no_new_unsafe, against, interval } => {
+            gate(&api, &id, min_safe.unwrap_or(0.0), no_new_unsafe.then_some(against.as_deref()), interval)
+        }
         Cmd::Report { id, format } => report(&api, &id, format),
     };
     match r {
@@ -112,12 +128,26 @@ pub fn upload_models(api: &Api, spec_path: &Path) -> Result<Value, String> {
     Ok(doc)
 }
 
-fn submit(api: &Api, spec_path: &Path, priority: i64) -> Result<ExitCode, String> {
+fn submit(api: &Api, spec_path: &Path, priority: i64, follow_up: Option<&str>) -> Result<ExitCode, String> {
     let doc = upload_models(api, spec_path)?;
-    let c: Value = api.post_json(&format!("/api/v1/campaigns?priority={priority}"), &doc).map_err(describe)?;
+    let mut path = format!("/api/v1/campaigns?priority={priority}");
+    if let Some(f) = follow_up {
+        path.push_str(&format!("&follow_up={}", query_value(f)?));
+    }
+    let c: Value = api.post_json(&path, &doc).map_err(describe)?;
     let id = c["id"].as_str().ok_or("the server's answer has no campaign id")?;
     println!("{id}");
     Ok(ExitCode::SUCCESS)
+}
+
+/// A campaign id for a query string: ids are UUIDs, so anything else is refused here
+/// rather than escaped.
+fn query_value(v: &str) -> Result<&str, String> {
+    if !v.is_empty() && v.bytes().all(|b| b.is_ascii_alphanumeric() || b == b'-') {
+        Ok(v)
+    } else {
+        Err(format!("'{v}' is not a campaign id"))
+    }
 }
 
 fn describe(e: ApiError) -> String {
@@ -207,7 +237,9 @@ fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String>
     }
 }
 
-fn gate(api: &Api, id: &str, min_safe: f64, interval: f64) -> Result<ExitCode, String> {
+/// `no_new_unsafe`: `None` to skip the check, `Some(against)` to compare with
+/// `against` (or, when that is `None`, the campaign followed up).
+fn gate(api: &Api, id: &str, min_safe: f64, no_new_unsafe: Option<Option<&str>>, interval: f64) -> Result<ExitCode, String> {
     if !(0.0..=1.0).contains(&min_safe) {
         return Err("--min-safe must be a fraction between 0 and 1".into());
     }
@@ -217,13 +249,33 @@ fn gate(api: &Api, id: &str, min_safe: f64, interval: f64) -> Result<ExitCode, S
     if state != "done" {
         return Err(format!("campaign ended as '{state}', not done"));
     }
+    let mut pass = true;
     if safe >= min_safe {
         println!("pass: proven-safe fraction {safe:.6} ≥ {min_safe}");
-        Ok(ExitCode::SUCCESS)
     } else {
         println!("fail: proven-safe fraction {safe:.6} < {min_safe}");
-        Ok(ExitCode::from(1))
+        pass = false;
     }
+    if let Some(against) = no_new_unsafe {
+        let mut path = format!("/api/v1/campaigns/{id}/changes");
+        if let Some(a) = against {
+            path.push_str(&format!("?against={}", query_value(a)?));
+        }
+        let ch: Value = api.get_json(&path).map_err(describe)?;
+        let s2u = &ch["summary"]["safe_to_unsafe"];
+        let exact = s2u["reduced"].as_str().ok_or("the server's changes answer has no summary.safe_to_unsafe")?;
+        let before = ch["against"].as_str().unwrap_or("?");
+        if exact == "0/1" {
+            println!("pass: no volume proven safe in {before} is unsafe now");
+        } else {
+            println!(
+                "fail: {exact} of the envelope ({:.6}) was proven safe in {before} and is unsafe now",
+                s2u["fraction"].as_f64().unwrap_or(f64::NAN)
+            );
+            pass = false;
+        }
+    }
+    Ok(if pass { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
 
 fn report(api: &Api, id: &str, format: Format) -> Result<ExitCode, String> {
