@@ -253,9 +253,9 @@ class Lander:
             "horizon_periods": cls.horizon,
             "envelope": {"h": [1.0, 10.0], "v": [-4.0, 1.0]},
             "refinement": {"max_depth": 10, "split": ["h", "v"], "refine_unsafe": False},
-            # Cutting a branch's box along the widest state decides more lander cells than
-            # cutting along the most sensitive one (measured, BENCHMARKS.md).
-            "engine": {"decision_split": "widest"},
+            # Measured best for this scenario (BENCHMARKS.md, engine options): box sets with
+            # interval network bounds, decision pieces cut along the widest state.
+            "engine": {"set": "box", "bounds": "interval", "decision_split": "widest"},
         }
 
 

@@ -8,7 +8,7 @@
 //! The campaigns run in process with the engine's own `check_cell` (no server), with the
 //! refinement rule the server applies: largest cells first, an inconclusive cell is cut
 //! at the midpoint of its hinted state (else the widest relative to the envelope), unsafe
-//! cells are not refined, down to the scenario's max depth. CPU time is the sum of the
+//! cells are refined as well (as with `refine_unsafe`), down to the scenario's max depth. CPU time is the sum of the
 //! per-cell engine times. Verdicts are deterministic, so a cell met by two runs (the
 //! adaptive campaign and a grid) is decided once and its measured time counted in both.
 
@@ -142,23 +142,29 @@ fn widest(cl: &ClosedLoop, cell: &[Interval]) -> Option<usize> {
 struct Step {
     depth: u32,
     kind: Kind,
+    /// Not cut further: its status is final in the campaign's partition.
+    leaf: bool,
     stats: Stats,
 }
 
-/// Adaptive campaign to `max_depth`: level by level (largest first).
-fn adaptive(eng: &Engine, max_depth: u32) -> Vec<Step> {
-    let mut level: Vec<Vec<Interval>> = vec![eng.cl.envelope()];
+/// Adaptive campaign to `max_depth`, starting from the uniform grid of `start` cuts
+/// (0: the whole envelope), level by level (largest first).
+fn adaptive(eng: &Engine, start: u32, max_depth: u32) -> Vec<Step> {
+    let mut level: Vec<Vec<Interval>> = grid(eng.cl, start);
     let mut steps = Vec::new();
-    for depth in 0..=max_depth {
+    for depth in start..=max_depth {
         if level.is_empty() {
             break;
         }
         let decided = eng.decide(&level);
         let mut next = Vec::new();
         for (cell, d) in level.iter().zip(&decided) {
-            steps.push(Step { depth, kind: d.kind, stats: d.stats.clone() });
-            if d.kind == Kind::Inconclusive && depth < max_depth {
-                if let Some(k) = d.cut {
+            let cut = if d.kind != Kind::Safe && depth < max_depth { d.cut } else { None };
+            steps.push(Step { depth, kind: d.kind, leaf: cut.is_none(), stats: d.stats.clone() });
+            // Unsafe cells are refined too (the demo's `refine_unsafe`): a counterexample
+            // proves one point unsafe, and the rest of the cell may still be provable.
+            {
+                if let Some(k) = cut {
                     let (a, b) = cell[k].bisect();
                     let (mut lo, mut hi) = (cell.clone(), cell.clone());
                     lo[k] = a;
@@ -211,17 +217,17 @@ fn curve(steps: &[Step]) -> Vec<(f64, f64)> {
         .collect()
 }
 
-fn fractions(steps: &[Step], max_depth: u32) -> (f64, f64, f64) {
+/// Final safe and unsafe fractions of the partition (its leaves) and the CPU seconds.
+fn fractions(steps: &[Step]) -> (f64, f64, f64) {
     let (mut s, mut u, mut total) = (0.0, 0.0, 0.0);
     for st in steps {
         match st.kind {
-            Kind::Safe => s += volume(st.depth),
-            Kind::Unsafe => u += volume(st.depth),
-            Kind::Inconclusive => {}
+            Kind::Safe if st.leaf => s += volume(st.depth),
+            Kind::Unsafe if st.leaf => u += volume(st.depth),
+            _ => {}
         }
         total += st.stats.wall_ms / 1e3;
     }
-    let _ = max_depth;
     (s, u, total)
 }
 
@@ -305,7 +311,7 @@ fn main() {
     writeln!(md, "Command: `cargo bench -p tessera-worker --bench campaign`{}.", if quick { " -- --quick" } else { "" }).unwrap();
     writeln!(md, "Engine budgets as in the demo (node budget 600, 5 s per cell, 12 falsifier samples); {threads} engine threads; CPU time = sum of per-cell engine times.\n").unwrap();
 
-    let mut t1 = String::from("### 1. Adaptive bisection against uniform grids\n\n| scenario | max depth | adaptive: safe / unsafe fraction, cells, CPU s | grid depths: safe fraction (cells, CPU s) | F | adaptive CPU s to F | best grid CPU s to F | grid / adaptive |\n|---|---|---|---|---|---|---|---|\n");
+    let mut t1 = String::from("### 1. Adaptive bisection against uniform grids\n\n| scenario | max depth | adaptive from the root: safe / unsafe fraction, cells, CPU s | adaptive from a grid of depth S: S: safe, cells, CPU s | grid depths: safe fraction (cells, CPU s) | F | from the root: CPU s to F | from depth S: CPU s to F | best grid: CPU s to F | grid / adaptive (root / S) |\n|---|---|---|---|---|---|---|---|---|---|\n");
     let mut t2 = String::from("### 2. Tightness against Monte Carlo\n\n| scenario | proven safe | MC safe (95 % CI), n | proven / MC safe | counterexample volume | MC unsafe |\n|---|---|---|---|---|---|\n");
     let mut t3 = String::from("### 3. Per-cell cost by depth (adaptive campaign)\n\n| scenario | depth | cells | safe/unsafe/inconcl. | median ms | plant % | network % | falsify % | decided: median proof / one simulation |\n|---|---|---|---|---|---|---|---|---|\n");
     let mut t4 = String::from("### 4. Thread scaling (the same cells on 1 and 2 threads)\n\n| scenario | cells | 1 thread s | 2 threads s | parallel efficiency |\n|---|---|---|---|---|\n");
@@ -316,9 +322,15 @@ fn main() {
         let max_depth = if quick { cl.spec.max_depth.min(7) } else { cl.spec.max_depth.min(10) };
         eprintln!("[{:>6.0} s] {name}: adaptive campaign to depth {max_depth}", started.elapsed().as_secs_f64());
         let eng = Engine::new(&cl, threads);
-        let steps = adaptive(&eng, max_depth);
-        let (a_safe, a_unsafe, a_cpu) = fractions(&steps, max_depth);
+        let steps = adaptive(&eng, 0, max_depth);
+        let (a_safe, a_unsafe, a_cpu) = fractions(&steps);
         let a_curve = curve(&steps);
+        // The same refinement started from a uniform grid four cuts above the max depth
+        // (the server's `initial_depth`), which skips the coarse levels that never prove.
+        let start = max_depth.saturating_sub(4);
+        let steps_s = adaptive(&eng, start, max_depth);
+        let (s_safe, _, s_cpu) = fractions(&steps_s);
+        let s_curve = curve(&steps_s);
 
         // Grids at several depths, the finest the adaptive campaign's max depth.
         let ns = cl.spec.split.len() as u32;
@@ -333,27 +345,39 @@ fn main() {
             let cpu: f64 = ds.iter().map(|d| d.stats.wall_ms / 1e3).sum();
             grid_rows.push((g, safe, cells.len(), cpu));
         }
-        let best = grid_rows.iter().map(|r| r.1).fold(a_safe, f64::max);
+        let best = grid_rows.iter().map(|r| r.1).fold(a_safe.max(s_safe), f64::max);
         let grid_txt: Vec<String> = grid_rows.iter().map(|(g, s, n, c)| format!("{g}: {s:.4} ({n}, {c:.1})")).collect();
         for (i, f) in [0.5, 0.8, 0.95].iter().enumerate() {
             let target = f * best;
             let a_t = a_curve.iter().find(|(_, v)| *v >= target && target > 0.0).map(|(t, _)| *t);
+            let s_t = s_curve.iter().find(|(_, v)| *v >= target && target > 0.0).map(|(t, _)| *t);
             let g_t = grid_rows.iter().filter(|r| r.1 >= target && target > 0.0).map(|r| r.3).fold(f64::INFINITY, f64::min);
             let fmt = |x: Option<f64>| x.map(|v| format!("{v:.1}")).unwrap_or("not reached".into());
-            let ratio = match a_t {
+            let ratio = |x: Option<f64>| match x {
                 Some(a) if g_t.is_finite() => format!("{:.1}×", g_t / a),
                 _ => "–".into(),
             };
             let head = if i == 0 {
                 format!(
-                    "| {name} | {max_depth} | {a_safe:.4} / {a_unsafe:.4}, {}, {a_cpu:.1} | {} ",
+                    "| {name} | {max_depth} | {a_safe:.4} / {a_unsafe:.4}, {}, {a_cpu:.1} | {start}: {s_safe:.4}, {}, {s_cpu:.1} | {} ",
                     steps.len(),
+                    steps_s.len(),
                     grid_txt.join("; ")
                 )
             } else {
-                "| | | | ".into()
+                "| | | | | ".into()
             };
-            writeln!(t1, "{head}| {:.0} % of {best:.4} | {} | {} | {ratio} |", f * 100.0, fmt(a_t), if g_t.is_finite() { format!("{g_t:.1}") } else { "not reached".into() }).unwrap();
+            writeln!(
+                t1,
+                "{head}| {:.0} % of {best:.4} | {} | {} | {} | {} / {} |",
+                f * 100.0,
+                fmt(a_t),
+                fmt(s_t),
+                if g_t.is_finite() { format!("{g_t:.1}") } else { "not reached".into() },
+                ratio(a_t),
+                ratio(s_t)
+            )
+            .unwrap();
         }
 
         // Tightness.
@@ -425,14 +449,13 @@ fn main() {
         });
         let options: Vec<(&str, EngineOptions, Option<EngineOptions>)> = vec![
             ("boxes, interval network bounds", boxes.clone(), None),
-            ("affine sets, interval network bounds", with(&|o| o.bounds = BoundsMethod::Interval), None),
-            ("affine sets, symbolic network bounds", with(&|o| o.bounds = BoundsMethod::Symbolic), None),
-            ("affine sets, interval then symbolic per decision", with(&|o| o.bounds = BoundsMethod::Portfolio), None),
-            ("per cell: boxes first, then affine + symbolic", with(&|o| o.bounds = BoundsMethod::Symbolic), Some(boxes.clone())),
+            ("affine sets, interval network bounds", with(&|o| { o.set = SetKind::Affine; o.bounds = BoundsMethod::Interval }), None),
+            ("affine sets, symbolic network bounds", with(&|o| { o.set = SetKind::Affine; o.bounds = BoundsMethod::Symbolic }), None),
+            ("affine sets, interval then symbolic per decision", with(&|o| { o.set = SetKind::Affine; o.bounds = BoundsMethod::Portfolio }), None),
+            ("per cell: boxes first, then affine + symbolic", with(&|o| { o.set = SetKind::Affine; o.bounds = BoundsMethod::Symbolic }), Some(boxes.clone())),
             (
-                "affine + symbolic, pieces cut along the other rule",
+                "the scenario's options, decision pieces cut along the other rule",
                 with(&|o| {
-                    o.bounds = BoundsMethod::Symbolic;
                     o.decision_split = match base.decision_split {
                         DecisionSplit::Widest => DecisionSplit::Sensitivity,
                         DecisionSplit::Sensitivity => DecisionSplit::Widest,
@@ -452,8 +475,8 @@ fn main() {
             });
             let mut e = Engine::new(&c2, threads);
             e.cheap_first = cheap_cl.as_ref();
-            let st = adaptive(&e, od);
-            let (s, u, cpu) = fractions(&st, od);
+            let st = adaptive(&e, 0, od);
+            let (s, u, cpu) = fractions(&st);
             writeln!(t5, "| {name} | {od} | {label} | {s:.4} | {u:.4} | {} | {cpu:.1} |", st.len()).unwrap();
         }
     }
