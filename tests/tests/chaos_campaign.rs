@@ -102,7 +102,7 @@ impl Setup {
     fn spawn_worker(&self, slot: usize, incarnation: usize, token: &str) -> Child {
         let name = format!("w{slot}-{incarnation}");
         Command::new(bin("tessera-worker"))
-            .args(["run", "--server", &self.url, "--threads", "1", "--name", &name])
+            .args(["run", "--server", &self.url, "--threads", "2", "--name", &name])
             .arg("--ack-log")
             .arg(self.dir.join(format!("ack-{name}.log")))
             .env("TESSERA_TOKEN", token)
