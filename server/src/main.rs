@@ -87,7 +87,7 @@ async fn run(cli: Cli) -> anyhow::Result<()> {
             for sig in [signal_hook::consts::SIGTERM, signal_hook::consts::SIGINT] {
                 signal_hook::flag::register(sig, stop.clone())?;
             }
-            let opts = tessera_worker::client::run::RunOptions { server, token, threads, name, max_cells: None, idle_exit: None };
+            let opts = tessera_worker::client::run::RunOptions { server, token, threads, name, max_cells: None, idle_exit: None, ack_log: None };
             let s = tokio::task::spawn_blocking(move || tessera_worker::client::run::run(opts, stop)).await??;
             println!("worker done: {} cells in {:.1} s, {} leases released", s.cells, s.seconds, s.released);
             Ok(())

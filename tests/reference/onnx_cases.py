@@ -250,6 +250,9 @@ def main():
     bad("bad_two_outputs.onnx", model([helper.make_node("Relu", ["x"], ["y"], name="r"),
                                        helper.make_node("Relu", ["x"], ["y2"], name="r2")], [], [1, 4], [1, 4], f64,
                                       outputs=outs), ["exactly one output", "y2"])
+    # A declared output size the nodes do not compute: 4 outputs declared as 3.
+    bad("bad_declared_output.onnx", model([helper.make_node("Gemm", ["x", "w44"], ["y"], name="fc")], [w44],
+                                          [1, 4], [1, 3], f64), ["graph output 'y'", "declared as [1, 3]"])
     # An empty graph.
     bad("bad_empty.onnx", model([], [], [1, 4], [1, 4], f64), ["empty graph"])
     # Not ONNX at all.

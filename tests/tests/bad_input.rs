@@ -113,6 +113,8 @@ fn bad_inputs_get_a_clear_4xx_and_change_nothing() {
         ("reserved name", Box::new(|s| s["states"][0]["name"] = json!("sin")), "states[0].name"),
         ("unsafe chain", Box::new(|s| s["unsafe"][0]["all"][0] = json!("0 <= h <= 1")), "unsafe[0].all[0]"),
         ("unsafe without comparison", Box::new(|s| s["unsafe"][0]["all"][0] = json!("h + 1")), "unsafe[0].all[0]"),
+        // Found by fuzzing: the constraint splitter used to panic inside a multi-byte character.
+        ("multi-byte character in a constraint", Box::new(|s| s["unsafe"][0]["all"][0] = json!("h <= 0.\u{2de}2")), "unsafe[0].all[0]"),
         ("empty unsafe set", Box::new(|s| s["unsafe"] = json!([])), "unsafe"),
         ("absurd depth", Box::new(|s| s["refinement"]["max_depth"] = json!(1000)), "refinement.max_depth"),
         ("split of an unknown state", Box::new(|s| s["refinement"]["split"] = json!(["q"])), "refinement.split[0]"),
@@ -190,10 +192,150 @@ fn bad_inputs_get_a_clear_4xx_and_change_nothing() {
     assert_eq!(ans["items"][0]["status"], "unknown_lease", "{ans}");
     tried += 1;
 
+    // Every broken model of the ONNX reader's reference set (written with the `onnx`
+    // package's helper API by tests/reference/onnx_cases.py): unsupported operators,
+    // a weight shape that does not fit, a declared output size the nodes do not
+    // compute, cycles, missing inputs, ... Each is refused naming the node at fault.
+    let cases_dir = tempfile::tempdir().unwrap();
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("reference/onnx_cases.py");
+    let out = Command::new("python3").arg(&script).arg(cases_dir.path()).output().expect("python3 must be installed");
+    assert!(out.status.success(), "onnx_cases.py failed (are onnx and onnxruntime installed?): {}", String::from_utf8_lossy(&out.stderr));
+    let manifest: Value = serde_json::from_slice(&std::fs::read(cases_dir.path().join("manifest.json")).unwrap()).unwrap();
+    let bad_models = manifest["bad"].as_array().unwrap();
+    assert!(bad_models.len() >= 10);
+    for m in bad_models {
+        let f = m["file"].as_str().unwrap();
+        let bytes = std::fs::read(cases_dir.path().join(f)).unwrap();
+        let (st, ans) = call("POST", &format!("{url}/api/v1/models"), &admin, Some((&bytes, "application/octet-stream")));
+        assert!((400..500).contains(&st), "{f}: status {st}: {ans}");
+        for needle in m["must_contain"].as_array().unwrap() {
+            assert!(ans.to_string().contains(needle.as_str().unwrap()), "{f}: the answer does not say {needle}: {ans}");
+        }
+        tried += 1;
+    }
+
     // Still up, and nothing was written by the refused requests.
     assert_eq!(call("GET", &format!("{url}/healthz"), &admin, None).0, 200);
     let (_, list) = call("GET", &campaigns_url, &admin, None);
     assert_eq!(list["campaigns"].as_array().map(|a| a.len()), Some(0), "a refused request created a campaign: {list}");
     assert!(tried >= 50, "only {tried} bad inputs tried");
     println!("{tried} bad inputs tried; every one refused with a 4xx JSON error; server up; nothing written");
+}
+
+/// Results that arrive for a lease that ended (expired, already answered, campaign
+/// cancelled), that name another campaign's cell, or that say nothing readable, are
+/// refused item by item with a status saying why, and are never counted.
+#[test]
+fn results_for_ended_leases_or_other_cells_are_refused_and_not_counted() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let url = format!("http://127.0.0.1:{port}");
+    let _server = Server(
+        Command::new(bin("tessera-server"))
+            .args(["serve", "--listen", &format!("127.0.0.1:{port}"), "--lease-seconds", "1", "--sweep-seconds", "1"])
+            .arg("--db")
+            .arg(dir.join("db.sqlite"))
+            .arg("--bootstrap-token-file")
+            .arg(dir.join("admin.token"))
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap(),
+    );
+    let t0 = Instant::now();
+    while ureq::get(&format!("{url}/healthz")).call().is_err() {
+        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let admin = std::fs::read_to_string(dir.join("admin.token")).unwrap().trim().to_string();
+    let (st, tok) = call("POST", &format!("{url}/api/v1/admin/tokens"), &admin, Some((br#"{"role":"worker"}"#, "application/json")));
+    assert_eq!(st, 201, "{tok}");
+    let worker = tok["token"].as_str().unwrap().to_string();
+    let model = tessera_server::model_check::testing::tiny_model(1, 2, "ended-leases");
+    let (_, up) = call("POST", &format!("{url}/api/v1/models"), &admin, Some((&model, "application/octet-stream")));
+    let sha = up["sha256"].as_str().unwrap();
+    let spec = |name: &str| {
+        json!({
+            "name": name,
+            "states": [{"name": "h", "unit": "m"}],
+            "inputs": [{"name": "q", "unit": "m/s"}],
+            "dynamics": {"h": "q - 0.1 * h"},
+            "controller": {
+                "period": 0.5, "observations": [{"name": "level", "expr": "h"}],
+                "networks": [format!("sha256:{sha}")], "selection": {"mode": "single"}, "decision": "argmax",
+                "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 0.2}}],
+                "initial_command": "off"
+            },
+            "unsafe": [{"all": ["h >= 2"]}], "horizon_periods": 4,
+            "envelope": {"h": [0.0, 1.0]}, "refinement": {"max_depth": 3, "split": ["h"]}
+        })
+    };
+    let create = |name: &str| -> String {
+        let body = serde_json::to_vec(&spec(name)).unwrap();
+        let (st, c) = call("POST", &format!("{url}/api/v1/campaigns"), &admin, Some((&body, "application/json")));
+        assert_eq!(st, 201, "{c}");
+        c["id"].as_str().unwrap().to_string()
+    };
+    let (a, b) = (create("a"), create("b"));
+    let lease = || -> Vec<Value> {
+        let (st, l) = call("POST", &format!("{url}/api/v1/leases"), &worker, Some((br#"{"max":2,"worker":"t"}"#, "application/json")));
+        assert_eq!(st, 200, "{l}");
+        l["leases"].as_array().unwrap().clone()
+    };
+    let submit = |items: Value| -> Vec<Value> {
+        let body = serde_json::to_vec(&json!({"worker": "t", "results": items})).unwrap();
+        let (st, r) = call("POST", &format!("{url}/api/v1/results"), &worker, Some((&body, "application/json")));
+        assert_eq!(st, 200, "{r}");
+        r["items"].as_array().unwrap().clone()
+    };
+    let results_of = |id: &str| -> i64 {
+        call("GET", &format!("{url}/api/v1/campaigns/{id}/coverage"), &admin, None).1["results"].as_i64().unwrap()
+    };
+    let safe = json!({"verdict": "safe", "reason": "scripted", "split_hint": null, "counterexample": null, "stats": {}});
+    let mut tried = 0;
+
+    // One root cell of each campaign.
+    let leases = lease();
+    assert_eq!(leases.len(), 2, "{leases:?}");
+    let of = |c: &str| leases.iter().find(|l| l["campaign_id"] == c).unwrap().clone();
+    let (la, lb) = (of(&a), of(&b));
+
+    // A's lease with B's cell: refused, and A's lease stays usable.
+    let r = submit(json!([{"lease_id": la["lease_id"], "cell_id": lb["cell_id"], "result": safe}]));
+    assert_eq!(r[0]["status"], "invalid", "{r:?}");
+    tried += 1;
+    // Unreadable verdicts.
+    for bad in [json!({"verdict": "maybe"}), json!({"verdict": "safe", "error": "both"}), json!("safe"), json!({})] {
+        let r = submit(json!([{"lease_id": la["lease_id"], "result": bad}]));
+        assert_eq!(r[0]["status"], "invalid", "{bad}: {r:?}");
+        tried += 1;
+    }
+    // The same lease twice in one batch: the first counts, the second is a duplicate.
+    let r = submit(json!([{"lease_id": la["lease_id"], "result": safe}, {"lease_id": la["lease_id"], "result": safe}]));
+    assert_eq!((r[0]["status"].as_str(), r[1]["status"].as_str()), (Some("accepted"), Some("duplicate")), "{r:?}");
+    tried += 1;
+    // And again in a later batch.
+    let r = submit(json!([{"lease_id": la["lease_id"], "result": safe}]));
+    assert_eq!(r[0]["status"], "duplicate", "{r:?}");
+    tried += 1;
+
+    // B's lease expires (1 s leases, swept every second); its late result is refused.
+    std::thread::sleep(Duration::from_millis(2500));
+    let r = submit(json!([{"lease_id": lb["lease_id"], "result": safe}]));
+    assert_eq!(r[0]["status"], "expired", "{r:?}");
+    tried += 1;
+
+    // A lease of a campaign cancelled meanwhile: withdrawn.
+    let leases = lease();
+    let lb2 = leases.iter().find(|l| l["campaign_id"] == b.as_str()).expect("B's root is leased again").clone();
+    let (st, c) = call("POST", &format!("{url}/api/v1/campaigns/{b}/cancel"), &admin, Some((b"", "application/json")));
+    assert_eq!(st, 200, "{c}");
+    let r = submit(json!([{"lease_id": lb2["lease_id"], "result": safe}]));
+    assert_eq!(r[0]["status"], "withdrawn", "{r:?}");
+    tried += 1;
+
+    assert_eq!(results_of(&a), 1, "only A's one accepted result counts");
+    assert_eq!(results_of(&b), 0, "nothing of B was accepted");
+    println!("{tried} bad results tried; each refused with its reason; none counted");
 }

@@ -76,6 +76,10 @@ enum Cmd {
         /// Exit once the server has had no work for this many seconds.
         #[arg(long)]
         idle_exit: Option<f64>,
+        /// Append the lease id of every result the server acknowledged to this file
+        /// (one per line; for fault-injection tests).
+        #[arg(long)]
+        ack_log: Option<PathBuf>,
     },
     /// Re-simulate a counterexample and print its trajectory and where it becomes unsafe.
     Replay {
@@ -107,8 +111,8 @@ fn main() -> ExitCode {
         Cmd::Validate { spec, json } => validate(&spec, json),
         Cmd::Check { spec, cell, json } => cli_engine::check(&spec, cell.as_deref(), json),
         Cmd::Replay { verdict, spec } => cli_engine::replay(&verdict, spec.as_deref()),
-        Cmd::Run { server, token, threads, name, max_cells, idle_exit } => {
-            run_worker(server, token, threads, name, max_cells, idle_exit)
+        Cmd::Run { server, token, threads, name, max_cells, idle_exit, ack_log } => {
+            run_worker(server, token, threads, name, max_cells, idle_exit, ack_log)
         }
         Cmd::Bounds { model, lower, upper, method, json } => match bounds(&model, &lower, &upper, method) {
             Ok(b) => {
@@ -250,6 +254,7 @@ fn run_worker(
     name: Option<String>,
     max_cells: Option<u64>,
     idle_exit: Option<f64>,
+    ack_log: Option<PathBuf>,
 ) -> ExitCode {
     use std::sync::atomic::AtomicBool;
     use std::sync::Arc;
@@ -275,6 +280,7 @@ fn run_worker(
         name: name.unwrap_or_else(|| format!("{host}-{}", std::process::id())),
         max_cells,
         idle_exit: idle_exit.map(std::time::Duration::from_secs_f64),
+        ack_log,
     };
     tracing::info!("worker {} on {} threads, server {}", opts.name, threads, opts.server);
     match tessera_worker::client::run::run(opts, stop) {

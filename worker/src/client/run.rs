@@ -24,6 +24,10 @@ pub struct RunOptions {
     pub max_cells: Option<u64>,
     /// Exit when the server has had no work for this long; `None` waits forever.
     pub idle_exit: Option<Duration>,
+    /// Append the lease id of every result the server acknowledged (accepted, or
+    /// already recorded) to this file, one per line, right after the answer arrives.
+    /// For fault-injection tests that check no acknowledged result is ever lost.
+    pub ack_log: Option<std::path::PathBuf>,
 }
 
 /// What a run did, printed at the end.
@@ -86,6 +90,10 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
     let mut next_lease_at = Instant::now();
     let mut idle_since: Option<Instant> = None;
     let mut leased_total: u64 = 0;
+    let mut ack_log = match &opts.ack_log {
+        Some(p) => Some(std::fs::OpenOptions::new().create(true).append(true).open(p)?),
+        None => None,
+    };
 
     loop {
         let stopping = stop.load(Ordering::SeqCst) || opts.max_cells.is_some_and(|m| leased_total >= m);
@@ -101,6 +109,9 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
                 Ok(answers) => {
                     for a in answers.iter().filter(|a| a.status != "accepted") {
                         tracing::warn!(lease = %a.lease_id, status = %a.status, "result not accepted");
+                    }
+                    if let Some(f) = ack_log.as_mut() {
+                        log_acknowledged(f, &answers);
                     }
                     pending.clear();
                     backoff = Duration::from_millis(200);
@@ -220,6 +231,20 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
     }
     summary.seconds = started.elapsed().as_secs_f64();
     Ok(summary)
+}
+
+/// Append the acknowledged lease ids with one unbuffered write, so that a process
+/// killed afterwards has already handed them to the operating system.
+fn log_acknowledged(f: &mut std::fs::File, answers: &[super::api::ItemAnswer]) {
+    use std::io::Write;
+    let mut text = String::new();
+    for a in answers.iter().filter(|a| a.status == "accepted" || a.status == "duplicate") {
+        text.push_str(&a.lease_id);
+        text.push('\n');
+    }
+    if let Err(e) = f.write_all(text.as_bytes()) {
+        tracing::warn!("cannot append to the acknowledgement log: {e}");
+    }
 }
 
 /// A cell is done: its lease no longer needs extending and its result waits to be sent.

@@ -268,23 +268,32 @@ impl Interval {
             return Interval::ONE;
         }
         if n < 0 {
-            return self.powi(-n).recip();
+            // `unsigned_abs`, not `-n`: −i32::MIN does not fit in an i32.
+            return self.powi_u(n.unsigned_abs()).recip();
         }
-        // |x|^n on a non-negative range, with each product rounded outward.
-        let pow_down = |b: f64| -> f64 {
-            let mut r = 1.0f64;
-            for _ in 0..n {
-                r = down(r * b).max(0.0);
+        self.powi_u(n as u32)
+    }
+
+    /// `xⁿ` for `n ≥ 1`, by repeated squaring: O(log n) products, not n (an exponent
+    /// such as 797025325 from a spec would otherwise loop for seconds).
+    fn powi_u(self, n: u32) -> Interval {
+        // |x|^n on a non-negative range. Every factor is ≥ 0 and every product is rounded
+        // outward, so each partial result bounds the exact one from below (above).
+        let pow_round = |b: f64, round: fn(f64) -> f64| -> f64 {
+            let (mut r, mut base, mut k) = (1.0f64, b, n);
+            while k > 0 {
+                if k & 1 == 1 {
+                    r = round(r * base).max(0.0);
+                }
+                k >>= 1;
+                if k > 0 {
+                    base = round(base * base).max(0.0);
+                }
             }
             r
         };
-        let pow_up = |b: f64| -> f64 {
-            let mut r = 1.0f64;
-            for _ in 0..n {
-                r = up(r * b);
-            }
-            r
-        };
+        let pow_down = |b: f64| pow_round(b, down);
+        let pow_up = |b: f64| pow_round(b, up);
         if n % 2 == 0 {
             Interval::new(pow_down(self.mig()), pow_up(self.mag()))
         } else {
@@ -539,6 +548,24 @@ mod tests {
         assert!(x.hi() >= 4.0);
         let y = Interval::new(-2.0, 1.0).powi(3);
         assert!(y.lo() <= -8.0 && y.hi() >= 1.0);
+    }
+
+    #[test]
+    fn large_integer_powers_are_enclosures_and_fast() {
+        // Powers of two and of three below 2^53 are exact in binary floating point
+        // (IEEE 754), so the exact values are known: 2^1001, 2^-1001, 3^20 = 3486784401.
+        let x = Interval::new(0.5, 2.0).powi(1001);
+        assert!(x.lo() <= 2f64.powi(-1001) && x.lo() > 0.0 && x.hi() >= 2f64.powi(1001));
+        assert!(Interval::point(-3.0).powi(21).contains(-10460353203.0));
+        assert!(Interval::point(3.0).powi(20).contains(3486784401.0));
+        // An exponent found by fuzzing: a loop of n products took seconds; squaring is
+        // immediate, and the result is still an enclosure (0^n = 0, 1.1^n overflows).
+        assert!(Interval::point(0.0).powi(797_025_325).contains(0.0));
+        assert_eq!(Interval::point(1.1).powi(797_025_325).hi(), f64::INFINITY);
+        // The most negative exponent (−i32::MIN overflowed before): 4^−2³¹ is positive
+        // and below the smallest normal double.
+        let m = Interval::new(2.0, 4.0).powi(i32::MIN);
+        assert!(!m.is_undefined() && m.lo() < f64::MIN_POSITIVE && m.hi() > 0.0, "{m:?}");
     }
 
     #[test]

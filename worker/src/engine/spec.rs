@@ -730,8 +730,12 @@ fn parse_constraint(text: &str, resolve: &impl Fn(&str) -> Option<usize>) -> Res
     let mut i = 0;
     let mut count = 0;
     while i < bytes.len() {
-        let rest = &text[i..];
-        if let Some(op) = ops.iter().find(|op| rest.starts_with(**op)) {
+        // Compare bytes, not `&text[i..]`: `i` may fall inside a multi-byte character
+        // (slicing there panicked, found by fuzzing). The operators are ASCII, and an
+        // ASCII byte never occurs inside a multi-byte UTF-8 character, so a match is
+        // always at a character boundary.
+        let rest = &bytes[i..];
+        if let Some(op) = ops.iter().find(|op| rest.starts_with(op.as_bytes())) {
             count += 1;
             if found.is_none() {
                 found = Some((i, op));

@@ -138,6 +138,39 @@ fn checked_count(dims: &[usize]) -> Option<usize> {
     (n <= MAX_ELEMENTS).then_some(n)
 }
 
+/// The graph output's declared size, when it declares one, must be the size the nodes
+/// compute: a reader that trusted the nodes alone would give a model declared with 3
+/// outputs (one per command) 195 outputs instead, found by fuzzing with a transposed
+/// batch input. Only the element count is compared (exporters differ on a leading batch
+/// dimension of 1); a symbolic leading dimension counts as 1, as for the input, and
+/// any other symbolic dimension, or none at all, leaves the size undeclared.
+fn check_declared_output(out: &ValueInfoProto, computed: &Dyn) -> Result<(), NetError> {
+    let Some(shape) = out.r#type.as_ref().and_then(|t| t.tensor_type.as_ref()).and_then(|t| t.shape.as_ref()) else {
+        return Ok(());
+    };
+    // An empty dimension list is read as "not declared" (as some writers leave it),
+    // not as a scalar.
+    if shape.dim.is_empty() {
+        return Ok(());
+    }
+    let mut declared: Vec<usize> = Vec::new();
+    for (k, d) in shape.dim.iter().enumerate() {
+        match &d.value {
+            Some(proto::DimensionValue::DimValue(v)) if *v >= 0 => declared.push(*v as usize),
+            Some(proto::DimensionValue::DimParam(_)) | None if k == 0 => declared.push(1),
+            _ => return Ok(()),
+        }
+    }
+    let count = declared.iter().try_fold(1usize, |n, &d| n.checked_mul(d));
+    if count != Some(computed.len()) {
+        return Err(NetError::Shape {
+            node: format!("graph output '{}'", out.name),
+            detail: format!("declared as {declared:?}, but the nodes compute {:?}", computed.dims),
+        });
+    }
+    Ok(())
+}
+
 fn node_label(node: &NodeProto, index: usize) -> String {
     if node.name.is_empty() {
         format!("{} #{index}", node.op_type)
@@ -514,6 +547,7 @@ impl<'g> Importer<'g> {
         let Some(Value::Dyn(d)) = self.values.get(&output) else {
             return Err(NetError::EmptyGraph(format!("the output '{output}' does not depend on the input")));
         };
+        check_declared_output(&self.graph.output[0], d)?;
         let layers = normalise(&d.chain);
         let float32 = self.float32;
         Network::new(self.input_dim, layers, float32)

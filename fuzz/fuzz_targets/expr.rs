@@ -1,0 +1,7 @@
+//! The expression parser, evaluation and derivatives on arbitrary input; see `fuzz/checks.rs`.
+#![no_main]
+
+#[path = "../checks.rs"]
+mod checks;
+
+libfuzzer_sys::fuzz_target!(|data: &[u8]| checks::check_expr(data));
