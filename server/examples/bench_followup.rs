@@ -118,6 +118,7 @@ async fn run_campaign(
         name: "bench".into(),
         max_cells: None,
         idle_exit: Some(Duration::from_millis(1500)),
+        ack_log: None,
     };
     let worker = std::thread::spawn(move || run(opts, Arc::new(AtomicBool::new(false))));
     let mut points = Vec::new();
