@@ -4,24 +4,12 @@
 //! appears from a refused request).
 
 use serde_json::{json, Value};
-use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Stdio};
+use std::path::Path;
+use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
+use tessera_tests::{bin, Server};
 
-fn bin(name: &str) -> PathBuf {
-    let exe = std::env::current_exe().expect("test executable path");
-    let p = exe.parent().and_then(|d| d.parent()).expect("target folder").join(name);
-    assert!(p.exists(), "{} is missing: run `cargo test --workspace` so it gets built", p.display());
-    p
-}
 
-struct Server(Child);
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.0.kill();
-        let _ = self.0.wait();
-    }
-}
 
 /// Status and JSON body of one request (any status).
 fn call(method: &str, url: &str, token: &str, body: Option<(&[u8], &str)>) -> (u16, Value) {

@@ -26,18 +26,13 @@ use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
+use tessera_tests::bin;
 
 const MAX_DEPTH: u32 = 13;
 const WORKERS: usize = 3;
 const WORKER_KILLS: usize = 20;
 const SERVER_KILLS: usize = 3;
 
-fn bin(name: &str) -> PathBuf {
-    let exe = std::env::current_exe().expect("test executable path");
-    let p = exe.parent().and_then(|d| d.parent()).expect("target folder").join(name);
-    assert!(p.exists(), "{} is missing: run `cargo test --workspace` so it gets built", p.display());
-    p
-}
 
 /// Children killed at the end whatever happens.
 #[derive(Default)]

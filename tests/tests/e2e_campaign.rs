@@ -8,15 +8,9 @@
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
+use tessera_tests::bin;
 
 /// The workspace's binaries sit next to the test's `deps` folder.
-fn bin(name: &str) -> PathBuf {
-    let exe = std::env::current_exe().expect("test executable path");
-    let dir = exe.parent().and_then(|d| d.parent()).expect("target profile folder");
-    let p = dir.join(name);
-    assert!(p.exists(), "{} is missing: run the workspace's tests (`cargo test --workspace`) so it gets built", p.display());
-    p
-}
 
 fn free_port() -> u16 {
     std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port()

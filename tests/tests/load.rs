@@ -19,26 +19,13 @@
 
 use serde_json::{json, Value};
 use std::collections::BTreeMap;
-use std::path::PathBuf;
-use std::process::{Child, Command, Stdio};
+use std::process::{Command, Stdio};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use tessera_tests::{bin, Server};
 
-fn bin(name: &str) -> PathBuf {
-    let exe = std::env::current_exe().expect("test executable path");
-    let p = exe.parent().and_then(|d| d.parent()).expect("target folder").join(name);
-    assert!(p.exists(), "{} is missing: run `cargo test --workspace` so it gets built", p.display());
-    p
-}
 
-struct Server(Child);
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.0.kill();
-        let _ = self.0.wait();
-    }
-}
 
 /// What one client saw: latencies per request kind, and every unexpected answer.
 #[derive(Default)]
