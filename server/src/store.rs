@@ -124,9 +124,20 @@ impl Store {
     }
 
     /// Start a write transaction (waits for the write lock).
+    ///
+    /// `BEGIN` runs in a task of its own so that it always finishes: sqlx's custom
+    /// `BEGIN` has an await between the statement's success and the creation of the
+    /// `Transaction` that would roll it back on drop. A caller dropped in that window
+    /// (an HTTP client killed mid-request cancels its handler) would return the
+    /// connection to the pool inside an open transaction holding the write lock for
+    /// good. A spawned task is not cancelled with its caller: if the caller is gone,
+    /// the task's `Transaction` is dropped there and rolled back.
     pub async fn write(&self) -> ApiResult<WriteTx<'_>> {
         let guard = self.write.lock().await;
-        let tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+        let pool = self.pool.clone();
+        let tx = tokio::spawn(async move { pool.begin_with("BEGIN IMMEDIATE").await })
+            .await
+            .map_err(|e| ApiError::internal(format!("starting a write transaction: {e}")))??;
         Ok(WriteTx { tx, _guard: guard })
     }
 
