@@ -3,7 +3,8 @@
 //!
 //! Writes are serialised by one async mutex (SQLite has one writer anyway; queueing
 //! in the server avoids busy-waiting), and each write is one `BEGIN IMMEDIATE`
-//! transaction. Reads go to the pool and, in WAL mode, never wait for the writer.
+//! transaction on a connection kept for writes. Reads go to a pool of their own and,
+//! in WAL mode, never wait for the writer.
 
 use crate::auth::{self, Role};
 use crate::error::{ApiError, ApiResult};
@@ -74,7 +75,10 @@ impl CampaignInfo {
 }
 
 pub struct Store {
+    /// Reads (in WAL mode they never wait for the writer).
     pub pool: SqlitePool,
+    /// The one connection every write goes through, behind `write`.
+    write_pool: SqlitePool,
     write: tokio::sync::Mutex<()>,
     infos: RwLock<HashMap<String, Arc<CampaignInfo>>>,
     tokens: RwLock<HashMap<String, Role>>,
@@ -108,10 +112,21 @@ impl Store {
             // Random UUID keys touch pages all over the indexes: keep them in memory.
             .pragma("cache_size", "-65536")
             .pragma("temp_store", "memory");
-        let pool = SqlitePoolOptions::new().max_connections(8).connect_with(opts).await?;
+        let pool = SqlitePoolOptions::new().max_connections(8).connect_with(opts.clone()).await?;
         sqlx::migrate!("../migrations").run(&pool).await?;
+        // Writes have a connection of their own: taking one from the readers' pool
+        // made every lease and result batch queue behind the waiting readers (the
+        // load test measured 4x fewer accepted results that way).
+        let write_pool = SqlitePoolOptions::new()
+            .max_connections(1)
+            .min_connections(1)
+            .idle_timeout(None)
+            .max_lifetime(None)
+            .connect_with(opts)
+            .await?;
         Ok(Arc::new(Store {
             pool,
+            write_pool,
             write: tokio::sync::Mutex::new(()),
             infos: RwLock::new(HashMap::new()),
             tokens: RwLock::new(HashMap::new()),
@@ -120,6 +135,7 @@ impl Store {
 
     /// Close the pool (waits for connections to be returned).
     pub async fn close(&self) {
+        self.write_pool.close().await;
         self.pool.close().await;
     }
 
@@ -134,7 +150,7 @@ impl Store {
     /// the task's `Transaction` is dropped there and rolled back.
     pub async fn write(&self) -> ApiResult<WriteTx<'_>> {
         let guard = self.write.lock().await;
-        let pool = self.pool.clone();
+        let pool = self.write_pool.clone();
         let tx = tokio::spawn(async move { pool.begin_with("BEGIN IMMEDIATE").await })
             .await
             .map_err(|e| ApiError::internal(format!("starting a write transaction: {e}")))??;
