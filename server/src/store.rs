@@ -116,7 +116,7 @@ impl Store {
         sqlx::migrate!("../migrations").run(&pool).await?;
         // Writes have a connection of their own: taking one from the readers' pool
         // made every lease and result batch queue behind the waiting readers (the
-        // load test measured 4x fewer accepted results that way).
+        // load test accepted 5x fewer results that way: 3,235 against 15,945 in 60 s).
         let write_pool = SqlitePoolOptions::new()
             .max_connections(1)
             .min_connections(1)
@@ -133,7 +133,7 @@ impl Store {
         }))
     }
 
-    /// Close the pool (waits for connections to be returned).
+    /// Close both pools (waits for connections to be returned).
     pub async fn close(&self) {
         self.write_pool.close().await;
         self.pool.close().await;

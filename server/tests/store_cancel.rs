@@ -36,7 +36,7 @@ async fn a_cancelled_write_leaves_no_open_transaction_behind() {
             _ = write => {}
             _ = give_up => cancelled += 1,
         }
-        // Every connection of the pool in turn must be able to start a write now.
+        // The write connection must be free: several writes in a row start at once.
         for _ in 0..10 {
             let w = tokio::time::timeout(Duration::from_secs(3), store.write())
                 .await
