@@ -832,6 +832,12 @@ impl StateSet {
         self.comps.iter().any(|a| a.is_undefined())
     }
 
+    /// Makes the symbols this set mints from now on start at `base` or above (so that
+    /// sets from different branches of a tree never give one number two meanings).
+    pub fn reserve_symbols_below(&mut self, base: usize) {
+        self.n_sym = self.n_sym.max(base);
+    }
+
     /// A new symbol of this set's space.
     pub fn fresh_symbol(&mut self) -> usize {
         self.n_sym += 1;
@@ -944,6 +950,13 @@ impl StateSet {
     /// (fresh symbols). The result contains the original set; non-initial symbols of
     /// the result are unrelated to those of the input.
     pub fn reduce(&mut self, max_generators: usize) {
+        self.reduce_keeping(max_generators, &|_| false);
+    }
+
+    /// [`StateSet::reduce`], keeping every symbol for which `protect` holds as it is
+    /// (like the initial symbols), so that constraints on those symbols keep their
+    /// meaning. The caller bounds how many symbols it protects.
+    pub fn reduce_keeping(&mut self, max_generators: usize, protect: &dyn Fn(usize) -> bool) {
         if self.is_undefined() {
             return;
         }
@@ -958,7 +971,7 @@ impl StateSet {
         let mut others: Vec<(usize, Vec<f64>)> = Vec::new();
         let mut keep: Vec<(usize, Vec<f64>)> = Vec::new();
         for (s, col) in cols {
-            if s < self.n_init {
+            if s < self.n_init || protect(s) {
                 keep.push((s, col));
             } else {
                 others.push((s, col));
@@ -1004,6 +1017,48 @@ impl StateSet {
             let c = self.comps[i].c;
             self.comps[i] = Affine::from_parts(c, &t, 0.0);
         }
+    }
+
+    /// Narrows symbols so that the set keeps only points whose components may lie in
+    /// `b`: for component i = c + g·ε_k + rest, with |rest| ≤ ρ, the constraint
+    /// a ≤ x_i ≤ b forces ε_k ∈ [(a − c − ρ)/g, (b − c + ρ)/g] ∩ [−1, 1]; the symbol is
+    /// then re-parametrised as ε_k = m + r·ε′ in every component (rounding into the error
+    /// radii). Only symbols for which `may_move` holds are re-parametrised (a symbol that
+    /// constraints elsewhere refer to must keep its meaning). Only points outside `b` are
+    /// removed, so the result encloses `set ∩ b`; `None` when they provably do not meet.
+    pub fn contract_to_box(&self, b: &[Interval], may_move: &dyn Fn(usize) -> bool) -> Option<StateSet> {
+        let mut comps: Vec<Affine> = self.comps.clone();
+        for _round in 0..2 {
+            for i in 0..comps.len() {
+                let x = &comps[i];
+                if x.is_undefined() || x.range().subset_of(&b[i]) {
+                    continue;
+                }
+                let Some(&(k, g)) = x.terms().iter().filter(|t| may_move(t.0)).max_by(|p, q| p.1.abs().total_cmp(&q.1.abs())) else {
+                    if x.range().intersect(&b[i]).is_none() {
+                        return None;
+                    }
+                    continue;
+                };
+                // ρ: everything but the chosen term, rounded up.
+                let rho = x.terms().iter().filter(|t| t.0 != k).fold(Interval::point(x.err()), |acc, t| acc + Interval::point(t.1.abs()));
+                let rho = rho.hi();
+                let c = Interval::point(x.center());
+                let lo = Interval::point(b[i].lo()) - c - Interval::point(rho);
+                let hi = Interval::point(b[i].hi()) - c + Interval::point(rho);
+                let gi = Interval::point(g);
+                let range = (lo / gi).hull(&(hi / gi));
+                let Some(eps) = range.intersect(&Interval::new(-1.0, 1.0)) else {
+                    return None; // no point of the set has component i in b
+                };
+                if eps.width() > 1.9 {
+                    continue; // not worth a re-parametrisation
+                }
+                let Some((m, r)) = mid_rad(eps) else { continue };
+                comps = comps.iter().map(|a| crate::engine::star::substitute(a, k, m, r)).collect();
+            }
+        }
+        Some(StateSet::from_forms(comps, self.n_sym, self.n_init))
     }
 
     /// Total number of symbol terms (generators) over all dimensions' distinct symbols.

@@ -13,6 +13,7 @@ use super::net::{self, Layer, Network, OutputBounds};
 use ndarray::{Array1, Array2};
 use super::plant::Plant;
 use super::spec::{BoundsMethod, Decision, Spec};
+use super::star::{Halfspace, Star};
 use std::collections::BTreeMap;
 use std::path::Path;
 
@@ -134,12 +135,30 @@ impl ClosedLoop {
     /// observations that a box of observations would lose.
     pub fn bound_outputs_affine(&self, prev: usize, obs: &[Affine], method: BoundsMethod) -> OutputBounds {
         let spec = &self.spec;
-        let fallback = || {
-            let boxes: Vec<Interval> = obs.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
-            self.bound_outputs(prev, &self.network_input(&boxes), method)
-        };
+        match self.composite(prev, obs) {
+            Some((composite, _)) => {
+                let unit = vec![Interval::new(-1.0, 1.0); composite.input_dim()];
+                net::output_bounds(&composite, &unit, method)
+            }
+            None => {
+                let boxes: Vec<Interval> = obs.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
+                self.bound_outputs(prev, &self.network_input(&boxes), method)
+            }
+        }
+    }
+
+    /// The network after `prev` composed with the observation forms: a network over
+    /// the unit box whose first inputs are the symbols the observations use (listed in
+    /// the second value, in order) and whose last `n_obs` inputs stand for each
+    /// observation's error radius and noise. For every point of the set and every noise
+    /// value, some point of the unit box gives the same network input exactly (the
+    /// normalisation and the forms are folded into an exact first affine layer; every
+    /// rounding goes into the radius of the observation's own input). `None` when an
+    /// observation is undefined or the composition is too wide.
+    fn composite(&self, prev: usize, obs: &[Affine]) -> Option<(Network, Vec<usize>)> {
+        let spec = &self.spec;
         if obs.iter().any(|f| f.is_undefined()) {
-            return fallback();
+            return None;
         }
         // Symbols used by any observation, in a dense order.
         let mut syms: Vec<usize> = obs.iter().flat_map(|f| f.terms().iter().map(|t| t.0)).collect();
@@ -148,7 +167,7 @@ impl ClosedLoop {
         let n_obs = obs.len();
         let width = syms.len() + n_obs;
         if width > 256 {
-            return fallback();
+            return None;
         }
         let mut w = Array2::<f64>::zeros((n_obs, width));
         let mut b = Array1::<f64>::zeros(n_obs);
@@ -174,13 +193,126 @@ impl ClosedLoop {
         let net = self.network_after(prev);
         let mut layers = vec![Layer::Dense { w, b }];
         layers.extend(net.layers().iter().cloned());
-        match Network::new(width, layers, net.is_float32()) {
-            Ok(composite) => {
-                let unit = vec![Interval::new(-1.0, 1.0); width];
-                net::output_bounds(&composite, &unit, method)
+        let composite = Network::new(width, layers, net.is_float32()).ok()?;
+        Some((composite, syms))
+    }
+
+    /// The decision over a constrained set: every command the controller may pick at
+    /// some point of `star` under some noise, each with the linear constraints on the
+    /// star's symbols that hold wherever it is picked, returned as the restricted star.
+    ///
+    /// Guarantee: if at a point `x(ε)` of the star, with some noise in its bounds, the
+    /// network after `prev` picks command `c`, then `c` is listed and `ε` satisfies
+    /// every constraint listed with it. Derivation: `c` picked implies
+    /// `y_c − y_j ≥ 0` (argmax; `≤ 0` for argmin) for every `j`; the backward pass gives
+    /// `y_j − y_c ≥ λ·z + d` over the composite box, so `λ·z + d ≤ 0` for the point's `z`
+    /// (its symbols and noise inputs). The noise inputs become the symbols
+    /// `noise_base + j` (observation j), which no component uses: they are existentially
+    /// quantified, jointly for all constraints of the command, and the caller must keep
+    /// them apart from every other symbol. Commands whose constraints provably leave the
+    /// star empty are dropped.
+    pub fn decide_on_star(&self, prev: usize, star: &Star, method: BoundsMethod, noise_base: usize) -> StarDecision {
+        let spec = &self.spec;
+        let obs: Vec<Affine> = spec.observations.iter().map(|o| star.set.eval_affine(&o.expr)).collect();
+        let all = |cands: Vec<usize>| StarDecision { parts: cands.into_iter().map(|c| (c, star.clone())).collect(), sensitivity: Vec::new() };
+        let Some((composite, syms)) = self.composite(prev, &obs) else {
+            let boxes: Vec<Interval> = obs.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
+            return all(possible_commands(&self.bound_outputs(prev, &self.network_input(&boxes), method), spec.decision));
+        };
+        // The composite's input box: each symbol's range under the constraints.
+        let Some(ranges) = star.symbol_ranges() else { return StarDecision { parts: Vec::new(), sensitivity: Vec::new() } };
+        let mut unit = vec![Interval::new(-1.0, 1.0); composite.input_dim()];
+        for (s, r) in ranges {
+            if let Ok(k) = syms.binary_search(&s) {
+                unit[k] = r;
+            } else if s >= noise_base && s < noise_base + obs.len() {
+                // A piece may restrict this decision's noise (see the slicing in reach).
+                unit[syms.len() + (s - noise_base)] = r;
             }
-            Err(_) => fallback(),
         }
+        // Linear forms over the composite's inputs are bounded over the star itself (its
+        // constraints), not only over the box of its symbols.
+        let sym_of = |k: usize| if k < syms.len() { syms[k] } else { noise_base + (k - syms.len()) };
+        let bounder = star.bounder();
+        let over_star = |lam: &Array2<f64>, d: &[f64]| -> Vec<f64> {
+            (0..lam.nrows())
+                .map(|r| {
+                    let terms: Vec<(usize, f64)> = (0..lam.ncols()).filter(|&k| lam[[r, k]] != 0.0).map(|k| (sym_of(k), lam[[r, k]])).collect();
+                    let f = Affine::from_parts(d[r], &terms, 0.0);
+                    let v = bounder.lower(&f);
+                    if v == f64::INFINITY { f64::NAN } else { v }
+                })
+                .collect()
+        };
+        let over: Option<net::bounds::Concretiser> = if star.cons.is_empty() { None } else { Some(&over_star) };
+        let box_bounds = net::bounds::output_bounds_over(&composite, &unit, method, over);
+        let cands = possible_commands(&box_bounds, spec.decision);
+        if cands.len() <= 1 {
+            return all(cands);
+        }
+        // Rows y_j − y_c (argmax) or y_c − y_j (argmin) for the pairs the box leaves open.
+        let m = composite.output_dim();
+        let mut pairs: Vec<(usize, usize)> = Vec::new();
+        for &c in &cands {
+            for j in 0..m {
+                if j == c {
+                    continue;
+                }
+                let d = box_bounds.diff[c][j]; // encloses y_c − y_j
+                let settled = match spec.decision {
+                    Decision::Argmax => d.lo() >= 0.0,
+                    Decision::Argmin => d.hi() <= 0.0,
+                };
+                if !settled {
+                    pairs.push((c, j));
+                }
+            }
+        }
+        let mut obj = Array2::<f64>::zeros((pairs.len(), m));
+        for (r, &(c, j)) in pairs.iter().enumerate() {
+            let (p, q) = match spec.decision {
+                Decision::Argmax => (j, c),
+                Decision::Argmin => (c, j),
+            };
+            obj[[r, p]] = 1.0;
+            obj[[r, q]] = -1.0;
+        }
+        let Some((lam, d)) = net::bounds::linear_lower_bounds(&composite, &unit, obj) else {
+            return all(cands);
+        };
+        let n_sym = syms.len();
+        // How much each symbol moves the open score differences over its range.
+        let sensitivity: Vec<(usize, f64)> = (0..composite.input_dim())
+            .map(|k| {
+                let sym = if k < n_sym { syms[k] } else { noise_base + (k - n_sym) };
+                (sym, (0..pairs.len()).map(|r| lam[[r, k]].abs()).sum::<f64>() * unit[k].width())
+            })
+            .collect();
+        let mut out = Vec::new();
+        for &c in &cands {
+            let mut cons = Vec::new();
+            for (r, &(cc, _)) in pairs.iter().enumerate() {
+                if cc != c {
+                    continue;
+                }
+                // The noise inputs become symbols of their own (one per observation,
+                // numbered from `noise_base`), shared by all constraints of this
+                // decision: one noise value must make c win against every j at once.
+                let terms: Vec<(usize, f64)> = (0..composite.input_dim())
+                    .filter(|&k| lam[[r, k]] != 0.0)
+                    .map(|k| (if k < n_sym { syms[k] } else { noise_base + (k - n_sym) }, lam[[r, k]]))
+                    .collect();
+                let rhs = (-Interval::point(d[r])).hi();
+                if !rhs.is_finite() {
+                    continue;
+                }
+                cons.push(Halfspace::new(terms, rhs));
+            }
+            if let Some(part) = star.restricted(cons) {
+                out.push((c, part));
+            }
+        }
+        StarDecision { parts: out, sensitivity }
     }
 
     /// The inputs (plant inputs) applied during a period, given the command decided in
@@ -205,6 +337,17 @@ impl ClosedLoop {
         let y = self.network_after(prev).eval(&input);
         pick(&y, self.spec.decision)
     }
+}
+
+/// What [`ClosedLoop::decide_on_star`] found.
+pub struct StarDecision {
+    /// Each command that may be picked, with the part of the star where it may be.
+    pub parts: Vec<(usize, Star)>,
+    /// For an open decision: each symbol the observations use, and each noise symbol,
+    /// with how much it moves the open score differences over its range (the sum of the
+    /// linear bounds' coefficients times the symbol's width). Empty when the decision
+    /// is settled.
+    pub sensitivity: Vec<(usize, f64)>,
 }
 
 /// argmax / argmin with ties to the lowest index (as numpy's argmax does).

@@ -612,6 +612,27 @@ impl Expr {
         found
     }
 
+    /// The switching functions of the expression's kinks: `a` for `abs(a)`, `a − b` for
+    /// `min(a, b)` and `max(a, b)` (the kink is where they are 0). Duplicates removed.
+    pub fn kink_arguments(&self) -> Vec<Expr> {
+        let mut out: Vec<Expr> = Vec::new();
+        self.visit(&mut |e| {
+            if let Expr::Call(f, args) = e {
+                let g = match f {
+                    Func::Abs => Some(args[0].clone()),
+                    Func::Min | Func::Max => Some(Expr::Sub(Box::new(args[0].clone()), Box::new(args[1].clone()))),
+                    _ => None,
+                };
+                if let Some(g) = g {
+                    if !out.contains(&g) {
+                        out.push(g);
+                    }
+                }
+            }
+        });
+        out
+    }
+
     /// Symbolic derivative with respect to symbol `i`, simplified.
     ///
     /// At the kinks of `abs`, `min` and `max` the derivative is a [`Expr::Select`] whose

@@ -20,8 +20,10 @@
 //!    dynamics.
 //! 4. **Order reduction** to `generators_per_dim · n` generators.
 //!
-//! Kinks: when `abs`/`min`/`max` may switch inside `B`, the step falls back to order 1
-//! (`X + h·f(B)`), which needs no derivative. Sub-steps start at `period / substeps`,
+//! Kinks: when `abs`/`min`/`max` may switch inside `B`, the step falls back to order 2
+//! for Lipschitz right-hand sides (`x₀ + t·f(x₀) + (t²/2)·J(B)·f(B)`, see
+//! `taylor_lipschitz`), and to order 1 (`X + h·f(B)`), which needs no derivative, if
+//! that fails. Sub-steps start at `period / substeps`,
 //! are halved when the a-priori enclosure (or a defined value) cannot be found, and the
 //! period is given up beyond `max_substeps` sub-steps. Sub-step boundaries are doubles;
 //! each step's duration is the outward-rounded interval between them, and the last
@@ -61,6 +63,26 @@ pub struct PeriodFlow {
     pub end: StateSet,
     pub tube: Vec<TubePiece>,
 }
+
+/// How [`Plant::integrate_period_in`] sees the set between sub-steps.
+pub struct SubstepView<'a> {
+    /// A box containing every point of the set (sound hull).
+    pub hull: &'a dyn Fn(&StateSet) -> Vec<Interval>,
+    /// Symbols the per-sub-step reduction keeps.
+    pub protect: &'a dyn Fn(usize) -> bool,
+    /// Generator limit of the per-sub-step reduction.
+    pub max_gens: usize,
+}
+
+impl SubstepView<'static> {
+    /// The plain view: the zonotope's own box, the engine's generator limit.
+    pub fn plain(opts: &EngineOptions, n: usize) -> SubstepView<'static> {
+        SubstepView { hull: &|x: &StateSet| x.to_box(), protect: &|_| false, max_gens: (opts.generators_per_dim.max(1) as usize) * n }
+    }
+}
+
+/// Finest sub-step at a kink, as a fraction of the nominal one.
+const KINK_SPLIT: u64 = 8;
 
 /// The continuous plant `dx/dt = f(x, u, w)`.
 #[derive(Clone, Debug)]
@@ -119,6 +141,37 @@ impl Plant {
         Plant { n, m, p, f, jx, jw }
     }
 
+    /// The switching functions of the right-hand side's kinks that depend on the states
+    /// only (symbols `0..n`), with their time derivatives along the flow under given
+    /// inputs and disturbances: `(g, ġ)` with `ġ = Σ_j ∂g/∂x_j · f_j`.
+    pub fn state_kinks(&self) -> Vec<(Expr, Expr)> {
+        let mut args: Vec<Expr> = Vec::new();
+        for fi in &self.f {
+            for g in fi.kink_arguments() {
+                let state_only = (self.n..self.n + self.m + self.p).all(|j| !g.uses(j));
+                if state_only && (0..self.n).any(|j| g.uses(j)) && !args.contains(&g) {
+                    args.push(g);
+                }
+            }
+        }
+        args.into_iter()
+            .map(|g| {
+                let mut rate: Option<Expr> = None;
+                for j in 0..self.n {
+                    if !g.uses(j) {
+                        continue;
+                    }
+                    let term = Expr::Mul(Box::new(g.diff(j)), Box::new(self.f[j].clone()));
+                    rate = Some(match rate {
+                        Some(r) => Expr::Add(Box::new(r), Box::new(term)),
+                        None => term,
+                    });
+                }
+                (g, rate.unwrap_or(Expr::Num(expr::Number::exact(0.0))))
+            })
+            .collect()
+    }
+
     /// Number of states.
     pub fn dim(&self) -> usize {
         self.n
@@ -149,11 +202,27 @@ impl Plant {
         period: f64,
         opts: &EngineOptions,
     ) -> Result<PeriodFlow, PlantError> {
+        self.integrate_period_in(x0, inputs, dist, period, opts, &SubstepView::plain(opts, self.n))
+    }
+
+    /// [`Plant::integrate_period`] for a set whose symbols carry constraints kept
+    /// elsewhere: `view.hull` gives the box that the a-priori enclosure starts from (it
+    /// must contain every point of the set the caller stands for, e.g. a hull computed
+    /// under the constraints), and the reduction after each sub-step keeps the symbols
+    /// `view.protect` names, up to `view.max_gens` generators. Same guarantee.
+    pub fn integrate_period_in(
+        &self,
+        x0: &StateSet,
+        inputs: &[f64],
+        dist: &[Interval],
+        period: f64,
+        opts: &EngineOptions,
+        view: &SubstepView<'_>,
+    ) -> Result<PeriodFlow, PlantError> {
         self.check_args(x0, inputs, dist, period, opts)?;
         let order = opts.taylor_order.clamp(1, 12) as usize;
         let substeps = opts.substeps.max(1) as u64;
         let max_substeps = opts.max_substeps.max(opts.substeps).max(1);
-        let max_gens = (opts.generators_per_dim.max(1) as usize) * self.n;
         // Ticks: the finest grid, fine enough for max_substeps equal steps.
         let mut level = 0u32;
         while substeps << level < max_substeps as u64 && level < 30 {
@@ -179,13 +248,31 @@ impl Plant {
             let s = step.min(total - pos);
             let (t0, t1) = (time_at(pos), time_at(pos + s));
             let h = Interval::point(t1) - Interval::point(t0);
-            match self.step(&x, &u, dist, h, Interval::new(t0, t1), order) {
-                Ok((mut next, piece)) => {
+            let result = self.step(&x, &(view.hull)(&x), &u, dist, h, Interval::new(t0, t1), order);
+            // A step across a kink has only an order-2 (or order-1) remainder, which
+            // shrinks with the square of the step: take smaller steps there, down to an
+            // eighth of the nominal one.
+            if let Ok((_, _, true, _)) = &result {
+                if s > 1 && s > nominal_step / KINK_SPLIT {
+                    step = s / 2;
+                    successes_at_step = 0;
+                    continue;
+                }
+            }
+            match result {
+                Ok((mut next, piece, _, b)) => {
                     steps_taken += 1;
                     if steps_taken > max_substeps {
                         return Err(PlantError::StepLimit { max_substeps });
                     }
-                    next.reduce(max_gens);
+                    // Every solution stays in the a-priori box B for the whole step, so
+                    // the end set may be narrowed to B (through symbols minted here, whose
+                    // meaning no one else relies on).
+                    next.reduce_keeping(view.max_gens, view.protect);
+                    let n_init = x0.num_initial();
+                    if let Some(narrow) = next.contract_to_box(&b, &|s| s >= n_init && !(view.protect)(s)) {
+                        next = narrow;
+                    }
                     x = next;
                     tube.push(piece);
                     pos += s;
@@ -328,15 +415,17 @@ impl Plant {
     }
 
     /// One validated sub-step of duration `h` (an enclosure of the exact duration).
+    #[allow(clippy::too_many_arguments)]
     fn step(
         &self,
         x: &StateSet,
+        xb: &[Interval],
         u: &[Interval],
         w: &[Interval],
         h: Interval,
         span: Interval,
         order: usize,
-    ) -> Result<(StateSet, TubePiece), StepFail> {
+    ) -> Result<(StateSet, TubePiece, bool, Vec<Interval>), StepFail> {
         let n = self.n;
         // Written so that a NaN duration is rejected too.
         let positive = h.lo() > 0.0;
@@ -344,11 +433,10 @@ impl Plant {
             return Err(StepFail::Undefined("step duration".into()));
         }
         let hmax = h.hi();
-        let xb = x.to_box();
         if xb.iter().any(|i| i.is_undefined() || !i.is_bounded()) {
             return Err(StepFail::Undefined("state set".into()));
         }
-        let b = self.a_priori(&xb, u, w, hmax)?;
+        let b = self.a_priori(xb, u, w, hmax)?;
         let (jx, jw) = self.jacobians(&b, u, w);
         if jx.iter().flatten().chain(jw.iter().flatten()).any(|j| j.is_undefined() || !j.is_bounded()) {
             return Err(StepFail::Undefined("Jacobian of f over the a-priori box (f not Lipschitz there)".into()));
@@ -359,9 +447,16 @@ impl Plant {
         let params_a: Vec<Affine> = params_i.iter().map(|&p| Affine::from_interval(p)).collect();
 
         // Taylor coefficients; fall back to order 1 when a kink may be crossed.
+        let mut kink = false;
         let (k, poly, rem) = match self.taylor(x, &b, &params_a, &params_i, order) {
             Ok(r) => r,
-            Err(TaylorFault::NotSmooth) => self.taylor(x, &b, &params_a, &params_i, 1).map_err(fault_to_fail)?,
+            Err(TaylorFault::NotSmooth) => match self.taylor_lipschitz(x, &b, &params_a, &params_i) {
+                Ok(r) => {
+                    kink = true;
+                    r
+                }
+                Err(_) => self.taylor(x, &b, &params_a, &params_i, 1).map_err(fault_to_fail)?,
+            },
             Err(f) => return Err(fault_to_fail(f)),
         };
 
@@ -433,7 +528,35 @@ impl Plant {
             return Err(StepFail::Undefined("state set after the step".into()));
         }
         let hull: Vec<Interval> = tube_set.to_box().iter().zip(&b).map(|(a, bb)| a.intersect(bb).unwrap_or(*bb)).collect();
-        Ok((end, TubePiece { t: span, enclosure: tube_set, hull }))
+        Ok((end, TubePiece { t: span, enclosure: tube_set, hull }, kink, b))
+    }
+
+    /// Order 2 where a kink may be met (f only Lipschitz): `x(t) ∈ x₀ + t·f(x₀) +
+    /// (t²/2)·J(B)·f(B)`. Because `x(t) − x₀ − t·f(x₀) = ∫₀ᵗ (f(x(s)) − f(x₀)) ds`, the
+    /// mean-value inclusion for Lipschitz maps (Clarke's generalised Jacobian, enclosed
+    /// by the interval Jacobian `J(B)` whose select nodes take the hull at kinks) gives
+    /// `f(x(s)) − f(x₀) ∈ J(B)·(x(s) − x₀)`, and `x(s) − x₀ ∈ s·f(B)` because the
+    /// solution stays in `B`; integrating `s` gives `t²/2`. The first two coefficients
+    /// are affine over `X` (they need no derivative), the remainder interval over `B`.
+    #[allow(clippy::type_complexity)]
+    fn taylor_lipschitz(
+        &self,
+        x: &StateSet,
+        b: &[Interval],
+        params_a: &[Affine],
+        params_i: &[Interval],
+    ) -> Result<(usize, Vec<Vec<Affine>>, Vec<Interval>), TaylorFault> {
+        let poly = ode_coefficients(&self.f, x.components(), params_a, 1)?;
+        let vars: Vec<Interval> = b.iter().chain(params_i).copied().collect();
+        let fb: Vec<Interval> = self.f.iter().map(|fi| fi.eval_interval(&vars)).collect();
+        let half = Interval::point(0.5);
+        let rem: Vec<Interval> = (0..self.n)
+            .map(|i| (0..self.n).fold(Interval::ZERO, |s, j| s + self.jx[i][j].eval_interval(&vars) * fb[j]) * half)
+            .collect();
+        if rem.iter().any(|r| r.is_undefined() || !r.is_bounded()) {
+            return Err(TaylorFault::Undefined);
+        }
+        Ok((2, poly, rem))
     }
 
     /// Affine coefficients `0..K` over `X` and the interval coefficient `K` over `B`.

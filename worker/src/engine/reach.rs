@@ -14,7 +14,9 @@
 use super::affine::{Affine, StateSet};
 use super::closed_loop::{possible_commands, ClosedLoop};
 use super::interval::Interval;
+use super::plant::SubstepView;
 use super::spec::{BoundsMethod, DecisionSplit, SetKind};
+use super::star::{Bounder, Star};
 use super::verdict::{Reason, SplitHint, Stats};
 use std::time::Instant;
 
@@ -36,9 +38,14 @@ pub struct Failure {
 }
 
 struct Branch {
-    set: StateSet,
-    /// The command decided in the previous period (c_{k−1}).
+    /// The states of the branch, with the constraints its decisions added (none in the
+    /// box and affine modes).
+    set: Star,
+    /// The command decided in the previous period (c_{k−1}); for a joined branch, one
+    /// of them that selects the same future (see [`join_branches`]).
     prev: usize,
+    /// Every command decided in the previous period by some state of the branch.
+    came_by: Vec<usize>,
 }
 
 /// Sensitivity of a blocking quantity to each split dimension, read from the
@@ -91,6 +98,9 @@ pub fn prove(cl: &ClosedLoop, cell: &[Interval], started: Instant, stats: &mut S
     prove_traced(cl, cell, started, stats, None)
 }
 
+/// Most constraints a branch keeps, per state dimension (the oldest go first).
+const CONSTRAINTS_PER_DIM: usize = 12;
+
 /// [`prove`], recording every branch's set at the end of every period into `trace`.
 pub fn prove_traced(
     cl: &ClosedLoop,
@@ -103,16 +113,24 @@ pub fn prove_traced(
     let opts = &spec.engine;
     let n = spec.states.len();
     let max_gens = (opts.generators_per_dim as usize) * n;
+    let max_cons = CONSTRAINTS_PER_DIM * n + 4;
     let mut frontier: Vec<Branch> = spec
         .initial_commands
         .iter()
-        .map(|&c| Branch { set: StateSet::from_box(cell), prev: c })
+        .map(|&c| Branch { set: Star::from_set(StateSet::from_box(cell)), prev: c, came_by: vec![c] })
         .collect();
     // Sensitivity of the observations that left a decision open (for the node budget).
     let mut ambiguity_hint: Option<SplitHint> = None;
+    // Every symbol minted anywhere in the tree gets a number of its own (a constraint may
+    // mention a symbol its set's forms no longer use, so numbers are never reused).
+    let mut next_symbol = n;
+    let kinks = cl.plant.state_kinks();
 
     for k in 0..spec.horizon {
         let mut next: Vec<Branch> = Vec::new();
+        // The noise of this period's observations: one symbol per observation.
+        let noise_base = next_symbol;
+        next_symbol += spec.observations.len();
         for br in &frontier {
             stats.tree_nodes += 1;
             if stats.tree_nodes > opts.node_budget {
@@ -132,85 +150,99 @@ pub fn prove_traced(
                 });
             }
 
-            // The decision: bound the network over the observation enclosure.
+            // The decision: which commands the controller may pick on this branch, each
+            // with the part of the set where it may be picked.
             let t_net = Instant::now();
-            let obs_forms: Vec<_> = spec.observations.iter().map(|o| br.set.eval_affine(&o.expr)).collect();
-            let obs: Vec<Interval> =
-                obs_forms.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
-            let input = cl.network_input(&obs);
-            let mut choices = Vec::new();
-            let methods: &[BoundsMethod] = match opts.bounds {
-                BoundsMethod::Portfolio => &[BoundsMethod::Interval, BoundsMethod::Symbolic],
-                BoundsMethod::Interval => &[BoundsMethod::Interval],
-                BoundsMethod::Symbolic => &[BoundsMethod::Symbolic],
-            };
-            for m in methods {
-                let b = match opts.set {
-                    SetKind::Affine => cl.bound_outputs_affine(br.prev, &obs_forms, *m),
-                    SetKind::Box => cl.bound_outputs(br.prev, &input, *m),
-                };
-                choices = possible_commands(&b, spec.decision);
-                if choices.len() == 1 {
-                    break;
-                }
-            }
+            let parts = decide(cl, br, noise_base, &mut next_symbol);
             stats.network_ms += t_net.elapsed().as_secs_f64() * 1e3;
-            if choices.len() > 1 && ambiguity_hint.is_none() {
+            if parts.len() > 1 && ambiguity_hint.is_none() {
+                let obs_forms: Vec<_> = spec.observations.iter().map(|o| br.set.set.eval_affine(&o.expr)).collect();
                 ambiguity_hint = hint_from_coeffs(cl, cell, |d| {
                     obs_forms.iter().enumerate().map(|(j, f)| f.coeff(d) / spec.scale[j]).map(f64::abs).sum()
                 });
             }
 
-            // Each possible command keeps only the part of the set where it may be
-            // chosen (a box hull of the pieces that allow it), so a branch does not
-            // carry states that would have decided otherwise.
-            let t_net = Instant::now();
-            let parts = restrict_to_decisions(cl, &br.set, br.prev, &choices);
-            stats.network_ms += t_net.elapsed().as_secs_f64() * 1e3;
-
-            // One child per possible command.
+            // One child per possible command (and per slice where the set crosses a kink
+            // of the dynamics during the period).
+            let mut jobs: Vec<(usize, Star)> = Vec::new();
             for (c, part) in parts {
-                let applied = cl.applied(c, br.prev);
-                {
-                    let t_plant = Instant::now();
-                    let flow = cl.plant.integrate_period(
-                        &part,
-                        &spec.commands[applied].inputs,
-                        &spec.disturbance_ranges,
-                        spec.period,
-                        opts,
-                    );
-                    stats.plant_ms += t_plant.elapsed().as_secs_f64() * 1e3;
-                    let flow = match flow {
-                        Ok(f) => f,
-                        Err(e) => {
-                            return Proof::Failed(Failure {
-                                reason: Reason::IntegrationFailed,
-                                detail: format!("period {k}, command '{}': {e}", spec.commands[applied].name),
-                                split_hint: None,
-                                suspect: Some(cell.iter().map(|i| i.mid()).collect()),
-                            })
-                        }
-                    };
-                    if let Some(f) = check_tube(cl, cell, &flow, k, applied) {
-                        return Proof::Failed(f);
+                // A zonotope much wider than the constrained set it stands for would
+                // make the integrator work on states the branch does not hold (and see
+                // kinks that are not there): enclose the set afresh first.
+                let part = compact(part, &mut next_symbol);
+                if opts.set == SetKind::Constrained && !kinks.is_empty() {
+                    let applied = cl.applied(c, br.prev);
+                    for slice in guard_slices(cl, part, applied, &kinks) {
+                        jobs.push((c, compact(slice, &mut next_symbol)));
                     }
-                let mut set = match opts.set {
-                    SetKind::Affine => flow.end.clone(),
-                    SetKind::Box => StateSet::from_box(&flow.end.to_box()),
-                };
-                set.reduce(max_gens);
-                next.push(Branch { set, prev: c });
+                } else {
+                    jobs.push((c, part));
                 }
             }
+            for (c, part) in jobs {
+                let applied = cl.applied(c, br.prev);
+                let t_plant = Instant::now();
+                let bounder = part.bounder();
+                let constrained: Vec<usize> = {
+                    let mut v: Vec<usize> = part.cons.iter().flat_map(|h| h.terms.iter().map(|t| t.0)).collect();
+                    v.sort_unstable();
+                    v.dedup();
+                    v
+                };
+                let hull = |x: &StateSet| bounder.hull_of(x);
+                let protect = |s: usize| constrained.binary_search(&s).is_ok();
+                let view = SubstepView { hull: &hull, protect: &protect, max_gens: 2 * max_gens + constrained.len() };
+                let mut start = part.set.clone();
+                start.reserve_symbols_below(next_symbol);
+                let flow = cl.plant.integrate_period_in(
+                    &start,
+                    &spec.commands[applied].inputs,
+                    &spec.disturbance_ranges,
+                    spec.period,
+                    opts,
+                    &view,
+                );
+                stats.plant_ms += t_plant.elapsed().as_secs_f64() * 1e3;
+                let flow = match flow {
+                    Ok(f) => f,
+                    Err(e) => {
+                        return Proof::Failed(Failure {
+                            reason: Reason::IntegrationFailed,
+                            detail: format!("period {k}, command '{}': {e}", spec.commands[applied].name),
+                            split_hint: None,
+                            suspect: Some(cell.iter().map(|i| i.mid()).collect()),
+                        })
+                    }
+                };
+                if let Some(f) = check_tube(cl, cell, &flow, &part.cons, &bounder, k, applied) {
+                    return Proof::Failed(f);
+                }
+                let mut set = match opts.set {
+                    SetKind::Box => Star::from_set(StateSet::from_box(&flow.end.to_box())),
+                    SetKind::Affine => Star::from_set(flow.end),
+                    SetKind::Constrained => Star { set: flow.end, cons: part.cons },
+                };
+                next_symbol = next_symbol.max(set.set.num_symbols());
+                set.reserve_symbols_below(next_symbol);
+                set.reduce(max_gens, max_cons);
+                next_symbol = next_symbol.max(set.set.num_symbols());
+                next.push(Branch { set, prev: c, came_by: vec![c] });
+            }
         }
-        // Keep the width bounded: join branches that share their previous command.
+        // Keep the width bounded: join branches that share their future.
         if next.len() > opts.join_above as usize {
-            next = join_by_command(next, max_gens);
+            next = join_branches(cl, cell, next, max_gens, max_cons, &mut next_symbol);
         }
         stats.max_branches = stats.max_branches.max(next.len() as u64);
         if let Some(t) = trace.as_deref_mut() {
-            t.periods.push(next.iter().map(|b| (b.prev, b.set.to_box())).collect());
+            t.periods.push(
+                next.iter()
+                    .flat_map(|b| {
+                        let hull = b.set.hull().unwrap_or_else(|| b.set.set.to_box());
+                        b.came_by.iter().map(move |&c| (c, hull.clone()))
+                    })
+                    .collect(),
+            );
         }
         frontier = next;
         stats.periods_reached = k + 1;
@@ -218,6 +250,175 @@ pub fn prove_traced(
     Proof::Safe
 }
 
+/// Slices of a part that will cross a kink of the dynamics (a switching function
+/// `g(x) = 0` of `abs`, `min` or `max`) during the period: the part is cut along `g` into
+/// slices about as thick as `g` moves in a quarter period, at most 8, so that each slice
+/// straddles the kink only briefly (the integrator's remainder across a kink is coarse).
+/// The slices together hold every point of the part. Only the first kink crossed is
+/// used; a part that crosses none is returned whole.
+fn guard_slices(cl: &ClosedLoop, part: Star, applied: usize, kinks: &[(super::expr::Expr, super::expr::Expr)]) -> Vec<Star> {
+    let spec = &cl.spec;
+    let Some(hull) = part.hull() else { return vec![part] };
+    if hull.iter().any(|i| i.is_undefined() || !i.is_bounded()) {
+        return vec![part];
+    }
+    let inputs: Vec<Interval> = spec.commands[applied].inputs.iter().map(|&v| Interval::point(v)).collect();
+    let vars = |b: &[Interval]| -> Vec<Interval> { b.iter().copied().chain(inputs.iter().copied()).chain(spec.disturbance_ranges.iter().copied()).collect() };
+    // A rough box of the period's states: hull + [0, T]·f(hull), twice.
+    let t = Interval::new(0.0, spec.period);
+    let mut reach = hull.clone();
+    for _ in 0..2 {
+        let v = vars(&reach);
+        let f: Vec<Interval> = spec.dynamics.iter().map(|e| e.eval_interval(&v)).collect();
+        reach = hull.iter().zip(&f).map(|(h, fi)| *h + t * *fi).collect();
+        if reach.iter().any(|i| i.is_undefined() || !i.is_bounded()) {
+            return vec![part];
+        }
+    }
+    let v = vars(&reach);
+    for (g, gdot) in kinks {
+        let gr = g.eval_interval(&v);
+        if !(gr.lo() < 0.0 && gr.hi() > 0.0) {
+            continue;
+        }
+        // How fast g moves at the start (over the reach box the contact force itself
+        // would make the estimate useless).
+        let rate = gdot.eval_interval(&vars(&hull)).mag();
+        if !(rate > 0.0 && rate.is_finite()) {
+            continue;
+        }
+        let form = part.set.eval_affine(g);
+        let Some(range) = part.bounder().range(&form) else { return vec![part] };
+        let thickness = rate * spec.period / 4.0;
+        let k = ((range.width() / thickness).ceil() as usize).clamp(1, 8);
+        if k == 1 || form.is_undefined() {
+            return vec![part];
+        }
+        let step = range.width() / k as f64;
+        let mut slices = Vec::new();
+        for i in 0..k {
+            let mut extra = Vec::new();
+            if i > 0 {
+                extra.extend(above(&form, range.lo() + step * i as f64));
+            }
+            if i + 1 < k {
+                extra.extend(below(&form, range.lo() + step * (i + 1) as f64));
+            }
+            if let Some(p) = part.restricted(extra) {
+                slices.push(p);
+            }
+        }
+        return slices;
+    }
+    vec![part]
+}
+
+/// The star itself, or when its zonotope's box is more than 1.5 times as wide as the
+/// constrained set in some state, [`Star::template_hull`] of it.
+fn compact(star: Star, next_symbol: &mut usize) -> Star {
+    if star.cons.is_empty() {
+        return star;
+    }
+    let Some(hull) = star.hull() else { return star };
+    let zbox = star.set.to_box();
+    if zbox.iter().zip(&hull).all(|(z, h)| z.width() <= 1.5 * h.width() + 1e-12) {
+        return star;
+    }
+    let c = Star::template_hull(std::slice::from_ref(&star), next_symbol);
+    *next_symbol = (*next_symbol).max(c.set.num_symbols());
+    c
+}
+
+/// The commands the controller may pick on a branch, each with the part of the branch's
+/// set where it may be picked (a sound enclosure of that part).
+fn decide(cl: &ClosedLoop, br: &Branch, noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
+    let spec = &cl.spec;
+    let opts = &spec.engine;
+    let methods: &[BoundsMethod] = match opts.bounds {
+        BoundsMethod::Portfolio => &[BoundsMethod::Interval, BoundsMethod::Symbolic],
+        BoundsMethod::Interval => &[BoundsMethod::Interval],
+        BoundsMethod::Symbolic => &[BoundsMethod::Symbolic],
+    };
+    if opts.set == SetKind::Constrained {
+        return decide_sliced(cl, br, methods, noise_base, next_symbol);
+    }
+    let set = &br.set.set;
+    let obs_forms: Vec<_> = spec.observations.iter().map(|o| set.eval_affine(&o.expr)).collect();
+    let obs: Vec<Interval> = obs_forms.iter().zip(&spec.observations).map(|(f, o)| f.range() + o.noise).collect();
+    let input = cl.network_input(&obs);
+    let mut choices = Vec::new();
+    for m in methods {
+        let b = match opts.set {
+            SetKind::Box => cl.bound_outputs(br.prev, &input, *m),
+            _ => cl.bound_outputs_affine(br.prev, &obs_forms, *m),
+        };
+        choices = possible_commands(&b, spec.decision);
+        if choices.len() == 1 {
+            break;
+        }
+    }
+    // Each possible command keeps only the part of the set where it may be chosen (a
+    // box hull of the pieces that allow it), so a branch does not carry states that
+    // would have decided otherwise.
+    restrict_to_decisions(cl, set, br.prev, &choices).into_iter().map(|(c, s)| (c, Star::from_set(s))).collect()
+}
+
+/// The decision on a constrained set, sliced where it stays open: while some piece
+/// leaves more than one command possible and the piece budget allows, the piece is cut
+/// in two along the symbol that moves the open score differences most (constraints
+/// `ε_s ≤ mid` and `ε_s ≥ mid`, which together keep every point), and decided again on
+/// each half, where the network's linear bounds are tighter. The pieces of one command
+/// are then enclosed together ([`Star::template_hull`]).
+fn decide_sliced(cl: &ClosedLoop, br: &Branch, methods: &[BoundsMethod], noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
+    let budget = cl.spec.engine.decision_pieces.max(1) as usize;
+    let decide_one = |star: &Star| {
+        let mut d = cl.decide_on_star(br.prev, star, methods[0], noise_base);
+        for m in &methods[1..] {
+            if d.parts.len() <= 1 {
+                break;
+            }
+            d = cl.decide_on_star(br.prev, star, *m, noise_base);
+        }
+        d
+    };
+    let mut open: Vec<(Star, super::closed_loop::StarDecision)> = vec![(br.set.clone(), decide_one(&br.set))];
+    let mut done: Vec<(usize, Star)> = Vec::new();
+    let mut pieces = 1;
+    // Best first: the piece whose open decision moves most with its symbols.
+    let weight = |d: &super::closed_loop::StarDecision| d.sensitivity.iter().map(|p| p.1).fold(0.0, f64::max);
+    while let Some(k) = (0..open.len()).max_by(|&a, &b| weight(&open[a].1).total_cmp(&weight(&open[b].1))) {
+        let (star, d) = open.swap_remove(k);
+        let splittable = d.parts.len() > 1 && pieces < budget;
+        let best = d.sensitivity.iter().copied().filter(|p| p.1 > 0.0).max_by(|a, b| a.1.total_cmp(&b.1));
+        let (true, Some((sym, _))) = (splittable, best) else {
+            done.extend(d.parts);
+            continue;
+        };
+        // The symbol's range under the constraints, cut at its midpoint.
+        let range = star.bounder().range(&Affine::symbol(0.0, sym, 1.0));
+        let Some(range) = range else { continue }; // empty piece
+        let mid = range.mid().clamp(-1.0, 1.0);
+        pieces += 1;
+        for (coef, rhs) in [(1.0, mid), (-1.0, -mid)] {
+            if let Some(half) = star.restricted(vec![super::star::Halfspace::new(vec![(sym, coef)], rhs)]) {
+                let dh = decide_one(&half);
+                open.push((half, dh));
+            }
+        }
+    }
+    // One part per command.
+    let mut by_command: Vec<(usize, Vec<Star>)> = Vec::new();
+    for (c, s) in done {
+        match by_command.iter_mut().find(|p| p.0 == c) {
+            Some(p) => p.1.push(s),
+            None => by_command.push((c, vec![s])),
+        }
+    }
+    by_command
+        .into_iter()
+        .map(|(c, stars)| if stars.len() == 1 { (c, stars.into_iter().next().unwrap()) } else { (c, Star::template_hull(&stars, next_symbol)) })
+        .collect()
+}
 
 /// Commands possible over a box of states (observations evaluated as affine forms),
 /// and how strongly the network's inputs move with each state over the box: the sum
@@ -310,71 +511,13 @@ fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: 
 /// lander cells at depth 7 against 7 with this rule, and changed nothing on the rover
 /// (12 of 256 at depth 8 either way).
 fn restrict_to_box(set: &StateSet, b: &[Interval]) -> Option<StateSet> {
-    let contracted = contract_to_box(set, b)?;
+    let contracted = set.contract_to_box(b, &|_| true)?;
     let fits = contracted.to_box().iter().zip(b).all(|(c, h)| c.width() <= h.width());
     if fits {
         Some(contracted)
     } else {
         Some(boxed_with_fresh_symbols(set, b))
     }
-}
-
-/// Narrow noise symbols so that the set keeps only points whose components may lie in
-/// `b`: for component i = c + g·ε_k + rest, with |rest| ≤ ρ, the constraint
-/// a ≤ x_i ≤ b forces ε_k ∈ [(a − c − ρ)/g, (b − c + ρ)/g] ∩ [−1, 1]; the symbol is
-/// then re-parametrised as ε_k = m + r·ε′ in every component (rounding into the error
-/// radii). Only points outside `b` are removed, so the result encloses `set ∩ b`.
-fn contract_to_box(set: &StateSet, b: &[Interval]) -> Option<StateSet> {
-    let mut comps: Vec<Affine> = set.components().to_vec();
-    for _round in 0..2 {
-        for i in 0..comps.len() {
-            let x = &comps[i];
-            if x.is_undefined() || x.range().subset_of(&b[i]) {
-                continue;
-            }
-            let Some(&(k, g)) = x.terms().iter().max_by(|p, q| p.1.abs().partial_cmp(&q.1.abs()).unwrap_or(std::cmp::Ordering::Equal)) else {
-                if x.range().intersect(&b[i]).is_none() {
-                    return None;
-                }
-                continue;
-            };
-            // ρ: everything but the chosen term, rounded up.
-            let rho = x.terms().iter().filter(|t| t.0 != k).fold(Interval::point(x.err()), |acc, t| acc + Interval::point(t.1.abs()));
-            let rho = rho.hi();
-            let c = Interval::point(x.center());
-            let lo = Interval::point(b[i].lo()) - c - Interval::point(rho);
-            let hi = Interval::point(b[i].hi()) - c + Interval::point(rho);
-            let gi = Interval::point(g);
-            let (e1, e2) = ((lo / gi), (hi / gi));
-            let range = e1.hull(&e2);
-            let Some(eps) = range.intersect(&Interval::new(-1.0, 1.0)) else {
-                return None; // no point of the set has component i in b
-            };
-            if eps.width() > 1.9 {
-                continue; // not worth a re-parametrisation
-            }
-            let m = Interval::point(eps.mid());
-            let r = Interval::point(eps.rad());
-            comps = comps.iter().map(|a| substitute(a, k, m, r)).collect();
-        }
-    }
-    Some(StateSet::from_forms(comps, set.num_symbols(), set.num_initial()))
-}
-
-/// `a` with ε_k replaced by m + r·ε_k (m, r exact doubles standing for the interval
-/// [m − r, m + r] ⊆ [−1, 1] the symbol is known to lie in).
-fn substitute(a: &Affine, k: usize, m: Interval, r: Interval) -> Affine {
-    let g = a.coeff(k);
-    if g == 0.0 || a.is_undefined() {
-        return a.clone();
-    }
-    let gi = Interval::point(g);
-    let c = Interval::point(a.center()) + gi * m;
-    let gk = gi * r;
-    let mut err = Interval::point(a.err()) + Interval::point(c.rad()) + Interval::point(gk.rad());
-    let terms: Vec<(usize, f64)> = a.terms().iter().map(|&(s, v)| if s == k { (s, gk.mid()) } else { (s, v) }).collect();
-    err = err + Interval::ZERO; // keep the sum rounded up
-    Affine::from_parts(c.mid(), &terms, err.hi())
 }
 
 /// The box `b` as a set in the symbol space of `like`, on fresh symbols (the initial
@@ -400,6 +543,8 @@ fn check_tube(
     cl: &ClosedLoop,
     cell: &[Interval],
     flow: &super::plant::PeriodFlow,
+    cons: &[super::star::Halfspace],
+    bounder: &Bounder,
     k: u32,
     applied: usize,
 ) -> Option<Failure> {
@@ -408,9 +553,18 @@ fn check_tube(
         for (r, conj) in spec.unsafe_set.iter().enumerate() {
             // The region is excluded when one of its constraints g ≤ 0 provably fails
             // (g > 0) over the piece. Interval evaluation on the hull first (cheap),
-            // then affine evaluation (keeps dependencies).
+            // then affine evaluation (keeps dependencies), then the affine form's
+            // bound under the branch's constraints, and finally all of the region's
+            // constraints at once: with `g_j ≤ 0` added as linear constraints
+            // (`a·ε ≤ −c + e` from g_j's affine form), an empty set means no point of
+            // the piece meets every one of them.
             let excluded = conj.iter().any(|c| c.g.eval_interval(&piece.hull).lo() > 0.0)
-                || conj.iter().any(|c| piece.enclosure.eval_affine(&c.g).range().lo() > 0.0);
+                || conj.iter().any(|c| piece.enclosure.eval_affine(&c.g).range().lo() > 0.0)
+                || conj.iter().any(|c| bounder.lower(&piece.enclosure.eval_affine(&c.g)) > 0.0)
+                || (conj.len() > 1 && {
+                    let extra: Option<Vec<super::star::Halfspace>> = conj.iter().map(|c| below(&piece.enclosure.eval_affine(&c.g), 0.0)).collect();
+                    extra.is_some_and(|extra| Star { set: piece.enclosure.clone(), cons: cons.to_vec() }.restricted(extra).is_none())
+                });
             if excluded {
                 continue;
             }
@@ -456,34 +610,183 @@ fn check_tube(
     None
 }
 
-/// Join branches with the same previous command into one set each. The zonotope join
-/// keeps dependencies but over-approximates the union by about the sum of the sets'
-/// widths when they share few symbols; when its box is clearly wider than the box hull
-/// of the union, the box hull (on fresh symbols) is taken instead. Both are sound.
-fn join_by_command(branches: Vec<Branch>, max_gens: usize) -> Vec<Branch> {
+/// Bound the number of branches. Plain sets (box and affine modes) are joined per
+/// previous command into one set each by [`StateSet::join`], which keeps dependencies but
+/// over-approximates the union by about the sum of the sets' widths when they share few
+/// symbols; when its box is clearly wider than the box hull of the union, the box hull
+/// (on fresh symbols) is taken instead.
+///
+/// Constrained sets are grouped by what their future depends on (the network selected
+/// next, and with latency 1 the previous command itself; the group keeps its first
+/// member's previous command, which is sound because nothing else depends on it), and a
+/// group larger than `join_above` is cut into `join_above` slabs along the state in which
+/// it is widest (relative to the envelope): the members whose centres fall in one slab
+/// are enclosed together by [`Star::template_hull`]. Slabs keep the pieces local, so a
+/// curved or slanted set stays covered by small, tight pieces. All of it is sound.
+fn join_branches(cl: &ClosedLoop, cell: &[Interval], branches: Vec<Branch>, max_gens: usize, max_cons: usize, next_symbol: &mut usize) -> Vec<Branch> {
+    let spec = &cl.spec;
+    let budget = spec.engine.join_above.max(1) as usize;
+    let constrained = spec.engine.set == SetKind::Constrained;
+    let key = |prev: usize| {
+        if !constrained || spec.latency != 0 {
+            (spec.network_of_command[prev], prev)
+        } else {
+            (spec.network_of_command[prev], usize::MAX)
+        }
+    };
     let mut groups: Vec<Vec<Branch>> = Vec::new();
     for b in branches {
-        match groups.iter_mut().find(|g| g[0].prev == b.prev) {
+        match groups.iter_mut().find(|g| key(g[0].prev) == key(b.prev)) {
             Some(g) => g.push(b),
             None => groups.push(vec![b]),
         }
     }
-    groups
-        .into_iter()
-        .map(|mut g| {
-            if g.len() == 1 {
-                return g.pop().unwrap();
+    let mut out = Vec::new();
+    for mut g in groups {
+        if g.len() == 1 {
+            out.push(g.pop().unwrap());
+            continue;
+        }
+        let prev = g[0].prev;
+        if !constrained {
+            out.push(Branch { set: Star::from_set(join_plain(g.iter().map(|b| &b.set.set).collect(), max_gens)), prev, came_by: vec![prev] });
+            continue;
+        }
+        if g.len() <= budget {
+            out.extend(g);
+            continue;
+        }
+        // A grid over the group's states, one grid cell per piece: start from the
+        // cell's own widths and coarsen the most divided state until the grid cells the
+        // members' hulls overlap fit the budget. Members are cut at grid lines (a cut
+        // adds the constraints `x_d ≤ t` and `x_d ≥ t`, keeping every point), and the
+        // pieces that fall in one grid cell are enclosed together.
+        let hulls: Vec<Vec<Interval>> = g.iter().map(|b| b.set.hull().unwrap_or_else(|| b.set.set.to_box())).collect();
+        let n = spec.states.len();
+        let union: Vec<Interval> = (0..n).map(|i| hulls.iter().map(|h| h[i]).reduce(|a, b| a.hull(&b)).unwrap()).collect();
+        let mut step: Vec<f64> = (0..n).map(|i| if cell[i].width() > 0.0 { cell[i].width() } else { f64::INFINITY }).collect();
+        let slots_of = |step: &[f64], h: &[Interval]| -> Vec<(i64, i64)> {
+            (0..n)
+                .map(|i| {
+                    if step[i].is_finite() && h[i].is_bounded() && !h[i].is_undefined() {
+                        (((h[i].lo() - union[i].lo()) / step[i]).floor() as i64, ((h[i].hi() - union[i].lo()) / step[i]).floor() as i64)
+                    } else {
+                        (0, 0)
+                    }
+                })
+                .collect()
+        };
+        loop {
+            let mut occupied: std::collections::BTreeSet<Vec<i64>> = std::collections::BTreeSet::new();
+            for h in &hulls {
+                let r = slots_of(&step, h);
+                let mut idx: Vec<Vec<i64>> = vec![Vec::new()];
+                for &(a, b) in &r {
+                    idx = idx.into_iter().flat_map(|v| (a..=b.min(a + 64)).map(move |t| { let mut w = v.clone(); w.push(t); w })).collect();
+                    if idx.len() > 4 * budget {
+                        break;
+                    }
+                }
+                occupied.extend(idx);
+                if occupied.len() > budget {
+                    break;
+                }
             }
-            let hull = g.iter().map(|b| b.set.to_box()).reduce(|a, b| a.iter().zip(&b).map(|(x, y)| x.hull(y)).collect()).unwrap();
-            let mut joined = g[0].set.clone();
-            for b in &g[1..] {
-                joined = joined.join(&b.set);
-                joined.reduce(max_gens);
+            if occupied.len() <= budget || !step.iter().any(|s| s.is_finite()) {
+                break;
             }
-            let jbox = joined.to_box();
-            let too_wide = jbox.iter().zip(&hull).any(|(j, h)| j.width() > 1.1 * h.width() + 1e-12);
-            let set = if too_wide { boxed_with_fresh_symbols(&g[0].set, &hull) } else { joined };
-            Branch { set, prev: g[0].prev }
-        })
-        .collect()
+            let d = (0..n).filter(|&i| step[i].is_finite()).max_by(|&a, &b| (union[a].width() / step[a]).total_cmp(&(union[b].width() / step[b]))).unwrap_or(0);
+            step[d] *= 2.0;
+        }
+        // Cut the members at the grid lines they cross.
+        let mut pieces: Vec<(Vec<i64>, Vec<Star>, Vec<usize>)> = Vec::new();
+        for (b, h) in g.into_iter().zip(&hulls) {
+            let came_by = b.came_by;
+            let mut parts = vec![b.set];
+            for (d, &(a, z)) in slots_of(&step, h).iter().enumerate() {
+                if z <= a {
+                    continue;
+                }
+                let mut cut = Vec::new();
+                for part in parts {
+                    let form = part.set.components()[d].clone();
+                    for t in a..=z {
+                        let lo = union[d].lo() + step[d] * t as f64;
+                        let hi = union[d].lo() + step[d] * (t + 1) as f64;
+                        let mut extra = Vec::new();
+                        if t > a {
+                            extra.push(above(&form, lo));
+                        }
+                        if t < z {
+                            extra.push(below(&form, hi));
+                        }
+                        if let Some(p) = part.restricted(extra.into_iter().flatten().collect()) {
+                            cut.push(p);
+                        }
+                    }
+                }
+                parts = cut;
+            }
+            for part in parts {
+                let ph = part.hull().unwrap_or_else(|| part.set.to_box());
+                let key: Vec<i64> = slots_of(&step, &ph).iter().map(|&(a, z)| (a + z).div_euclid(2)).collect();
+                match pieces.iter_mut().find(|p| p.0 == key) {
+                    Some(p) => {
+                        p.1.push(part);
+                        for &c in &came_by {
+                            if !p.2.contains(&c) {
+                                p.2.push(c);
+                            }
+                        }
+                    }
+                    None => pieces.push((key, vec![part], came_by.clone())),
+                }
+            }
+        }
+        for (_, piece, came_by) in pieces {
+            let set = if piece.len() == 1 {
+                piece.into_iter().next().unwrap()
+            } else {
+                let mut joined = Star::template_hull(&piece, next_symbol);
+                joined.reduce(max_gens, max_cons);
+                joined
+            };
+            *next_symbol = (*next_symbol).max(set.set.num_symbols());
+            out.push(Branch { set, prev, came_by });
+        }
+    }
+    out
+}
+
+/// The constraint `form ≤ t` on the form's symbols (`None` when the form is undefined):
+/// `Σ g·ε ≤ t − c + e`, rounded up.
+fn below(form: &Affine, t: f64) -> Option<super::star::Halfspace> {
+    if form.is_undefined() {
+        return None;
+    }
+    let rhs = (Interval::point(t) - Interval::point(form.center()) + Interval::point(form.err())).hi();
+    Some(super::star::Halfspace::new(form.terms().to_vec(), rhs))
+}
+
+/// The constraint `form ≥ t`.
+fn above(form: &Affine, t: f64) -> Option<super::star::Halfspace> {
+    below(&form.neg(), -t)
+}
+
+/// [`StateSet::join`] of several sets, or the box hull of their union on fresh symbols
+/// when the join's box is clearly wider than that hull.
+fn join_plain(sets: Vec<&StateSet>, max_gens: usize) -> StateSet {
+    let hull = sets.iter().map(|s| s.to_box()).reduce(|a, b| a.iter().zip(&b).map(|(x, y)| x.hull(y)).collect()).unwrap();
+    let mut joined = sets[0].clone();
+    for s in &sets[1..] {
+        joined = joined.join(s);
+        joined.reduce(max_gens);
+    }
+    let jbox = joined.to_box();
+    let too_wide = jbox.iter().zip(&hull).any(|(j, h)| j.width() > 1.1 * h.width() + 1e-12);
+    if too_wide {
+        boxed_with_fresh_symbols(sets[0], &hull)
+    } else {
+        joined
+    }
 }

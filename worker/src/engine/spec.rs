@@ -167,6 +167,9 @@ pub enum SetKind {
     Box,
     /// Affine forms / zonotopes (keeps linear dependencies between states).
     Affine,
+    /// Zonotopes with linear constraints on their symbols: each open decision adds the
+    /// network's linear bounds as constraints instead of cutting the set into boxes.
+    Constrained,
 }
 
 /// How network outputs are bounded over a box of inputs.
@@ -200,7 +203,7 @@ pub struct EngineOptions {
     pub substeps: u32,
     /// Most sub-steps per period before the period is given up. Default 256.
     pub max_substeps: u32,
-    /// Set representation. Default `affine`.
+    /// Set representation. Default `constrained`.
     pub set: SetKind,
     /// Network bounds. Default `symbolic`.
     pub bounds: BoundsMethod,
@@ -230,7 +233,7 @@ impl Default for EngineOptions {
             taylor_order: 4,
             substeps: 4,
             max_substeps: 256,
-            set: SetKind::Affine,
+            set: SetKind::Constrained,
             bounds: BoundsMethod::Symbolic,
             generators_per_dim: 8,
             node_budget: 4000,
