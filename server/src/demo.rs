@@ -20,14 +20,13 @@ const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[
         &[("lander.onnx", include_bytes!("../../demo/lander/lander.onnx"))],
     ),
     (
-        "rover",
-        include_str!("../../demo/rover/spec.json"),
+        "aisle",
+        include_str!("../../demo/aisle/spec.json"),
         &[
-            ("net_hard_left.onnx", include_bytes!("../../demo/rover/net_hard_left.onnx")),
-            ("net_left.onnx", include_bytes!("../../demo/rover/net_left.onnx")),
-            ("net_straight.onnx", include_bytes!("../../demo/rover/net_straight.onnx")),
-            ("net_right.onnx", include_bytes!("../../demo/rover/net_right.onnx")),
-            ("net_hard_right.onnx", include_bytes!("../../demo/rover/net_hard_right.onnx")),
+            ("net_cruise.onnx", include_bytes!("../../demo/aisle/net_cruise.onnx")),
+            ("net_creep.onnx", include_bytes!("../../demo/aisle/net_creep.onnx")),
+            ("net_veer_port.onnx", include_bytes!("../../demo/aisle/net_veer_port.onnx")),
+            ("net_veer_starboard.onnx", include_bytes!("../../demo/aisle/net_veer_starboard.onnx")),
         ],
     ),
 ];

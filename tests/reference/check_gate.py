@@ -96,7 +96,7 @@ class Handler(http.server.BaseHTTPRequestHandler):
 server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
 threading.Thread(target=server.serve_forever, daemon=True).start()
 url = f"http://127.0.0.1:{server.server_address[1]}"
-spec_path = os.path.join(root, "demo", "rover", "spec.json")
+spec_path = os.path.join(root, "demo", "aisle", "spec.json")
 
 
 def run(min_safe, token=TOKEN, extra=()):

@@ -1,5 +1,5 @@
 //! The demo scenarios exercise every kind of verdict, "safe" is checked outside the
-//! engine, and the rover's bank really switches networks.
+//! engine, and the aisle rover's bank really switches networks.
 //!
 //! For each committed scenario (`demo/*/spec.json`), a row of cells at a moderate depth is
 //! decided by the engine (proof, then falsifier). Checked:
@@ -15,8 +15,8 @@
 //!   same script, which must find the runtime picking the recorded commands and the
 //!   trajectory out of the unsafe set over the whole horizon. An unsound "safe" fails
 //!   here even if the engine's own simulation shared its error;
-//! - along rover trajectories the network in charge changes (the bank is used), with
-//!   onnxruntime agreeing on every decision.
+//! - along the aisle rover's trajectories the network in charge changes (the bank is
+//!   used), with onnxruntime agreeing on every decision.
 
 use serde_json::{json, Value};
 use std::collections::BTreeSet;
@@ -200,15 +200,18 @@ fn lander_cells_of_every_kind() {
 }
 
 #[test]
-fn rover_cells_of_every_kind_and_the_bank_switches() {
-    let (cl, _) = load("demo/rover/spec.json");
-    // Depth 9 over (py, th, px): a column of 8 cells across the aisle (py), at one
-    // heading band (th, 1/8) and one start band (px, 1/8); v unsplit.
-    let th_band = 3; // th ∈ [−0.05, 0]
-    let cells = grid(&cl.envelope(), &[8, 8, 8, 1], &[Some(&[0]), None, Some(&[th_band]), None]);
-    let (cl, o) = decide_row("demo/rover/spec.json", &cells);
-    println!("rover: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
-    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "rover: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
+fn aisle_cells_of_every_kind_and_the_bank_switches() {
+    let (cl, _) = load("demo/aisle/spec.json");
+    // Depth 10 over (py, th, px): the port half of a column across the aisle (py, 8 of
+    // 16 cells, from the centre line to the port rack), at one heading band (th, 1/8)
+    // and one start band (px, 1/8); v unsplit. Starts near the centre line pass both
+    // crates; starts near the port rack reach the port crate.
+    let th_band = 3; // th ∈ [−0.0375, 0]
+    let port_half: Vec<usize> = (8..16).collect();
+    let cells = grid(&cl.envelope(), &[8, 16, 8, 1], &[Some(&[0]), Some(&port_half), Some(&[th_band]), None]);
+    let (cl, o) = decide_row("demo/aisle/spec.json", &cells);
+    println!("aisle: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
+    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "aisle: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
     // The bank: networks in charge along the replayed runs.
     let mut used = BTreeSet::new();
     let mut switching_runs = 0;
@@ -219,7 +222,7 @@ fn rover_cells_of_every_kind_and_the_bank_switches() {
             switching_runs += 1;
         }
     }
-    println!("rover: {} replayed runs, {} switch networks, networks used {:?}", o.replays.len(), switching_runs, used);
-    assert!(switching_runs > 0, "no rover run switched networks");
-    assert!(used.len() >= 3, "rover runs used only networks {used:?} of {}", cl.spec.commands.len());
+    println!("aisle: {} replayed runs, {} switch networks, networks used {:?}", o.replays.len(), switching_runs, used);
+    assert!(switching_runs > 0, "no aisle run switched networks");
+    assert!(used.len() >= 3, "aisle runs used only networks {used:?} of {}", cl.spec.commands.len());
 }
