@@ -53,7 +53,8 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
         .map_err(|e| ApiError::bad_request(format!("the spec must be UTF-8 JSON: {e}")))?;
     let spec = spec::parse_spec(text).map_err(ApiError::invalid_spec)?;
 
-    let mut shapes: Vec<Option<NetworkShape>> = Vec::new();
+    // The engine's model checks (`Spec::check_network`) on every referenced model.
+    let mut model_errors = Vec::new();
     for (i, r) in spec.networks.iter().enumerate() {
         let field = format!("controller.networks[{i}]");
         let Some(hash) = r.strip_prefix("sha256:") else {
@@ -63,18 +64,23 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
             )
             .field(field));
         };
-        match store.model_shape(hash).await? {
+        let shape = match store.model_shape(hash).await? {
             None => {
                 return Err(ApiError::unprocessable("model_not_found", format!("no uploaded model with sha256 {hash}"))
                     .field(field))
             }
-            Some((Some(i), Some(o))) => shapes.push(Some(NetworkShape { inputs: i as usize, outputs: o as usize })),
-            Some(_) => shapes.push(None),
-        }
+            Some((Some(i), Some(o))) => NetworkShape { inputs: i as usize, outputs: o as usize },
+            // Widths not recorded with the model: read it again with the engine's reader.
+            Some(_) => {
+                let bytes = store.get_model(hash).await?.ok_or_else(|| ApiError::internal("stored model vanished"))?;
+                model_check::inspect_model(&bytes)
+                    .map_err(|e| ApiError::unprocessable("invalid_model", format!("stored model {hash}: {e}")).field(field))?
+            }
+        };
+        model_errors.extend(spec.check_network(i, shape));
     }
-    if shapes.iter().all(|s| s.is_some()) {
-        let known: Vec<NetworkShape> = shapes.iter().flatten().copied().collect();
-        spec.check_networks(&known).map_err(ApiError::invalid_spec)?;
+    if !model_errors.is_empty() {
+        return Err(ApiError::invalid_spec(model_errors));
     }
     if spec.max_depth > max_depth_limit {
         return Err(ApiError::unprocessable(

@@ -205,6 +205,37 @@ async fn refine_unsafe_keeps_cutting_falsified_cells() {
 }
 
 #[tokio::test]
+async fn submission_runs_the_engine_model_checks_naming_the_network() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = start(config(dir.path())).await;
+    let sub = ts.token(Role::Submitter).to_string();
+    // Three outputs for the spec's two commands (`Spec::check_network`, as the engine).
+    let m = tessera_server::model_check::testing::tiny_model(1, 3, "three outputs");
+    let r = ts.client.post_raw("/api/v1/models", &sub, m).await;
+    assert_eq!(r.status, 201, "{}", r.text());
+    let sha = r.json()["sha256"].as_str().unwrap().to_string();
+    let r = ts.client.post("/api/v1/campaigns", &sub, &spec(&sha, 3)).await;
+    assert_eq!(r.status, 422, "{}", r.text());
+    let v = r.json();
+    assert_eq!(v["error"], "invalid_spec");
+    assert_eq!(v["field"], "controller.networks[0]");
+    assert_eq!(v["errors"][0]["message"], "network has 3 outputs but the spec has 2 commands", "{v}");
+    // A model stored without its widths (the columns allow it) is read again with the
+    // engine's reader rather than let through.
+    let wide = tessera_server::model_check::testing::tiny_model(2, 3, "no widths");
+    let sha = ts.server.state.store.put_model(&wide, None, None).await.unwrap();
+    let r = ts.client.post("/api/v1/campaigns", &sub, &spec(&sha, 3)).await;
+    assert_eq!(r.status, 422, "{}", r.text());
+    let v = r.json();
+    assert_eq!(v["field"], "controller.networks[0]");
+    let messages: Vec<&str> = v["errors"].as_array().unwrap().iter().map(|e| e["message"].as_str().unwrap()).collect();
+    assert_eq!(messages, ["network takes 2 inputs but the spec has 1 observations", "network has 3 outputs but the spec has 2 commands"]);
+    let n: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM campaigns").fetch_one(&ts.server.state.store.pool).await.unwrap();
+    assert_eq!(n, 0, "no campaign was created");
+    ts.server.stop().await.unwrap();
+}
+
+#[tokio::test]
 async fn leases_expire_are_reissued_and_duplicates_are_ignored() {
     let dir = tempfile::tempdir().unwrap();
     let mut cfg = config(dir.path());

@@ -772,24 +772,28 @@ pub struct NetworkShape {
 }
 
 impl Spec {
+    /// Check the shape of network `index` (`controller.networks[index]`) against the
+    /// spec: one input per observation, one output per command. The one model check
+    /// shared by the engine ([`Spec::check_networks`]), `tessera-worker validate` and
+    /// the server's campaign submission; each error names the network's JSON path.
+    pub fn check_network(&self, index: usize, s: NetworkShape) -> Vec<SpecError> {
+        let p = format!("controller.networks[{index}]");
+        let mut e = Vec::new();
+        if s.inputs != self.observations.len() {
+            e.push(err(
+                p.clone(),
+                format!("network takes {} inputs but the spec has {} observations", s.inputs, self.observations.len()),
+            ));
+        }
+        if s.outputs != self.commands.len() {
+            e.push(err(p, format!("network has {} outputs but the spec has {} commands", s.outputs, self.commands.len())));
+        }
+        e
+    }
+
     /// Check the networks' shapes against the spec (`shapes[i]` for `networks[i]`).
     pub fn check_networks(&self, shapes: &[NetworkShape]) -> Result<(), Vec<SpecError>> {
-        let mut e = Vec::new();
-        for (i, s) in shapes.iter().enumerate() {
-            let p = format!("controller.networks[{i}]");
-            if s.inputs != self.observations.len() {
-                e.push(err(
-                    p.clone(),
-                    format!("network takes {} inputs but the spec has {} observations", s.inputs, self.observations.len()),
-                ));
-            }
-            if s.outputs != self.commands.len() {
-                e.push(err(
-                    p,
-                    format!("network has {} outputs but the spec has {} commands", s.outputs, self.commands.len()),
-                ));
-            }
-        }
+        let e: Vec<SpecError> = shapes.iter().enumerate().flat_map(|(i, s)| self.check_network(i, *s)).collect();
         if e.is_empty() {
             Ok(())
         } else {
@@ -915,6 +919,10 @@ mod tests {
         assert!(s.check_networks(&[NetworkShape { inputs: 1, outputs: 2 }]).is_ok());
         let e = s.check_networks(&[NetworkShape { inputs: 3, outputs: 2 }]).unwrap_err();
         assert_eq!(e[0].path, "controller.networks[0]");
+        let e = s.check_network(2, NetworkShape { inputs: 1, outputs: 3 });
+        assert_eq!(e.len(), 1);
+        assert_eq!(e[0].path, "controller.networks[2]");
+        assert_eq!(e[0].message, "network has 3 outputs but the spec has 2 commands");
     }
 
     #[test]
