@@ -16,7 +16,8 @@ campaign followed up is unsafe now (an exact fraction, compared as "0/1").
 Exit status: 0 pass, 1 proven-safe fraction below --min-safe, new unsafe volume with
 --no-new-unsafe (or the campaign failed), 2 usage, input, HTTP or timeout error.
 
-A pass is engineering evidence under the spec's model assumptions, not a certification;
+With its verdict the gate prints the server's caution (the coverage answer's `caution`):
+a pass is engineering evidence under the spec's model assumptions, not a certification;
 release decisions for a real system follow the applicable safety standards and the
 responsible certification authority.
 
@@ -38,6 +39,7 @@ FAILED_STATES = {"cancelled"}
 FRACTIONS_FIELD = "statuses"  # in the coverage answer: {"safe": {"fraction": x, ...}, ...}
 FRACTION_FIELD = "fraction"  # inside each status
 SAFE_FIELD = "safe"
+CAUTION_FIELD = "caution"  # in the coverage answer: the text to print with the verdict
 TOKEN_ENV = "TESSERA_TOKEN"
 FOLLOW_UP_PARAM = "follow_up"  # query parameter of the campaign creation
 CHANGES_PATH = "/api/v1/campaigns/{id}/changes"
@@ -185,6 +187,7 @@ def main(argv=None):
         safe = field(fractions, SAFE_FIELD, f"coverage.{FRACTIONS_FIELD}")
         if not isinstance(safe, (int, float)) or isinstance(safe, bool) or not 0.0 <= safe <= 1.0:
             raise GateError(f"coverage.{FRACTIONS_FIELD}.{SAFE_FIELD}.{FRACTION_FIELD} is not a fraction: {safe!r}")
+        caution = field(cov, CAUTION_FIELD, "coverage")
         new_unsafe = None
         if a.no_new_unsafe:
             path = CHANGES_PATH.format(id=cid)
@@ -196,7 +199,7 @@ def main(argv=None):
         return EXIT_ERROR
     others = ", ".join(f"{k} {v:.4f}" for k, v in fractions.items() if k != SAFE_FIELD and isinstance(v, (int, float)))
     print(f"proven safe {safe:.4f} of the envelope (required {a.min_safe:.4f}){'; ' + others if others else ''}")
-    print("This is engineering evidence under the spec's model assumptions, not a certification.")
+    print(caution)
     if safe < a.min_safe:
         print("FAIL: proven-safe fraction below the required minimum")
         return EXIT_BELOW

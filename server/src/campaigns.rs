@@ -11,12 +11,8 @@ use serde_json::{json, Value};
 use sha2::Digest;
 use sqlx::Row;
 use std::collections::HashMap;
+use tessera_worker::caution::CAUTION;
 use tessera_worker::engine::spec::{self, NetworkShape};
-
-/// The safety caution carried by every report.
-pub const CAUTION: &str = "These results are engineering evidence under the stated model assumptions \
-(dynamics, disturbance and noise bounds, envelope, horizon, and the networks as uploaded), not a \
-certification. They defer to the applicable safety standards and to the responsible certification authority.";
 
 /// Deepest uniform pre-split allowed at creation (2^16 leaves).
 pub const MAX_INITIAL_DEPTH: u32 = 16;
@@ -380,6 +376,7 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
         "fraction_per_second": volume_per_second,
         "estimated_seconds_remaining": eta,
         "estimate_note": "time left = open volume / resolved volume per second since the first result; deeper cells resolve less volume each, so this is a rough estimate",
+        "caution": CAUTION,
     }))
 }
 

@@ -11,6 +11,7 @@ use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
+use tessera_worker::caution::CAUTION;
 
 /// The demo scenarios, embedded: (folder, spec, [(file name, bytes)]).
 const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[
@@ -53,7 +54,7 @@ pub struct DemoOptions {
     #[arg(long, value_delimiter = ',')]
     pub only: Vec<String>,
     /// End with status 0 once every campaign is done, after one line per campaign
-    /// `safe=… unsafe=… unresolved=…`.
+    /// `safe=… unsafe=… unresolved=…` and the caution.
     #[arg(long)]
     pub exit_when_done: bool,
 }
@@ -189,15 +190,16 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     }
     println!("dashboard: {url}/dashboard (log in with the token in {})", opts.dir.join("admin.token").display());
     println!("reports: {url}/api/v1/campaigns/<id>/report.md");
-    println!("These results are engineering evidence under the demo's stated model assumptions, not a certification.");
     if opts.exit_when_done {
         stop_workers(&mut workers);
         server.stop().await?;
         for f in finals {
             println!("{f}");
         }
+        println!("{CAUTION}");
         return Ok(());
     }
+    println!("{CAUTION}");
     println!("serving at {url}; Ctrl-C to stop");
     tokio::signal::ctrl_c().await?;
     stop_workers(&mut workers);

@@ -31,6 +31,7 @@ fn assert_expected_fractions(cov: &Value) {
     // Leaves: safe 3, unsafe 1, unresolved 1 + 6 + 1 = 8; internal nodes: 11.
     assert_eq!(st["safe"]["cells"], 3);
     assert_eq!(st["unsafe"]["cells"], 1);
+    assert_eq!(cov["caution"], tessera_worker::caution::CAUTION);
     assert_eq!(st["unresolved"]["cells"], 8);
     assert_eq!(cov["split_cells"], 11);
     assert_eq!(cov["leaf_volume_matches_total"], true);
@@ -121,12 +122,15 @@ async fn scripted_campaign_ends_with_exact_fractions() {
     assert_eq!(rep["spec_hash"], c["spec_hash"]);
     assert_eq!(rep["model_sha256"], json!([model]));
     assert_eq!(rep["engine_versions"], json!(["scripted-1"]));
-    assert!(rep["caution"].as_str().unwrap().contains("not a certification"));
+    // The caution in full, float32 point included, from the one place it is written.
+    assert_eq!(rep["caution"], tessera_worker::caution::CAUTION);
+    assert!(rep["caution"].as_str().unwrap().contains("float32"));
     assert_eq!(rep["coverage"]["statuses"]["safe"]["reduced"], "7/16");
     let r = ts.client.get(&format!("/api/v1/campaigns/{id}/report.md"), ts.token(Role::Viewer)).await;
     assert!(r.content_type.starts_with("text/markdown"));
     let md = r.text();
-    for needle in ["not a certification", "certification authority", c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1"] {
+    let caution = tessera_worker::caution::CAUTION;
+    for needle in [caution, c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1"] {
         assert!(md.contains(needle), "report.md lacks {needle}:\n{md}");
     }
 

@@ -1,6 +1,7 @@
 //! `tessera-worker validate` and `check` on a two-tank spec of our own: `validate` runs
 //! the engine's own model checks (a network with 3 outputs for 2 commands is refused,
-//! naming `controller.networks[0]`, exactly as `check` refuses it).
+//! naming `controller.networks[0]`, exactly as `check` refuses it), and `check` carries
+//! the caution under every verdict (a line of text, or a field with `--json`).
 //!
 //! The networks are written by the `onnx` package, with their widths as onnxruntime
 //! reports them (tests/reference/make_onnx_model.py); the test fails, never skips,
@@ -9,6 +10,7 @@
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
+use tessera_worker::caution::{CAUTION, CAUTION_LINE};
 
 fn worker() -> Command {
     Command::new(env!("CARGO_BIN_EXE_tessera-worker"))
@@ -101,4 +103,23 @@ fn validate_runs_the_engine_model_checks_and_names_the_network() {
     let v: Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(v["networks_checked"], 0);
     assert_eq!(v["networks_stored"], json!([field]));
+}
+
+#[test]
+fn check_carries_the_caution_with_its_verdict() {
+    let dir = models();
+    let spec = write_spec(&dir, "fits_check.json", "pump_2_outputs.onnx");
+    let cell = r#"{"h1":[0.5,0.5625],"h2":[0.5,0.5625]}"#;
+    let o = worker().arg("check").arg(&spec).args(["--cell", cell]).output().unwrap();
+    assert!(o.status.success(), "{}", text(&o));
+    let out = String::from_utf8(o.stdout).unwrap();
+    let lines: Vec<&str> = out.lines().collect();
+    assert!(["safe:", "unsafe:", "inconclusive:"].iter().any(|v| lines[0].starts_with(v)), "{out}");
+    assert_eq!(*lines.last().unwrap(), CAUTION_LINE, "{out}");
+
+    let o = worker().arg("check").arg(&spec).args(["--cell", cell, "--json"]).output().unwrap();
+    assert!(o.status.success(), "{}", text(&o));
+    let v: Value = serde_json::from_slice(&o.stdout).expect("--json prints JSON only");
+    assert!(["safe", "unsafe", "inconclusive"].contains(&v["verdict"].as_str().unwrap()), "{v}");
+    assert_eq!(v["caution"], CAUTION);
 }

@@ -8,6 +8,7 @@ use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::Duration;
+use tessera_worker::caution::CAUTION_LINE;
 use tessera_worker::client::api::{Api, ApiError};
 use tessera_worker::engine::spec;
 
@@ -179,6 +180,7 @@ fn status(api: &Api, id: &str) -> Result<ExitCode, String> {
     if let Some(eta) = cov["estimated_seconds_remaining"].as_f64() {
         println!("about {eta:.0} s left");
     }
+    println!("{CAUTION_LINE}");
     Ok(ExitCode::SUCCESS)
 }
 
@@ -221,8 +223,11 @@ fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String>
                     let _ = std::io::stderr().flush();
                 }
                 if state != "running" && state != "paused" {
-                    if show && tty {
-                        eprintln!();
+                    if show {
+                        if tty {
+                            eprintln!();
+                        }
+                        eprintln!("{CAUTION_LINE}");
                     }
                     return Ok(cov);
                 }
@@ -275,6 +280,7 @@ fn gate(api: &Api, id: &str, min_safe: f64, no_new_unsafe: Option<Option<&str>>,
             pass = false;
         }
     }
+    println!("{CAUTION_LINE}");
     Ok(if pass { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
 
