@@ -274,7 +274,6 @@
     M.changesAt = 0;
     M.changes = null;
     $('changes-view').hidden = true;
-    $('drawn').textContent = '';
     legend($('map-legend'), SEVERITY);
     await poll(refreshCampaign);
   }
@@ -467,7 +466,30 @@
     return [lo, hi];
   }
 
-  function axesFrame(ctx, w, h, xr, yr, xname, yname) {
+  // A tick step of 1, 2 or 5 × 10^k, the smallest not below `raw` (common practice
+  // for axis labels).
+  function niceStep(raw) {
+    const p = Math.pow(10, Math.floor(Math.log10(raw)));
+    for (const m of [1, 2, 5]) if (m * p >= raw * (1 - 1e-9)) return m * p;
+    return 10 * p;
+  }
+
+  // Ticks of a time axis from 0 to `span` seconds at round values, in seconds,
+  // minutes or hours: [{v: seconds, label}], 3 to 6 of them.
+  function timeAxis(span) {
+    const unit = span >= 3 * 3600 ? ['hours', 3600] : span >= 180 ? ['minutes', 60] : ['seconds', 1];
+    const extent = span / unit[1];
+    const step = niceStep(extent / 5);
+    const decimals = Math.max(0, -Math.floor(Math.log10(step) + 1e-9));
+    const ticks = [];
+    for (let k = 0; k * step <= extent * (1 + 1e-9); k++) {
+      ticks.push({ v: k * step * unit[1], label: (k * step).toFixed(decimals) });
+    }
+    return { unit: unit[0], step, ticks };
+  }
+
+  // `xticks` (optional): [{v, label}] for the horizontal axis; else five even ticks.
+  function axesFrame(ctx, w, h, xr, yr, xname, yname, xticks) {
     const m = { l: 56, r: 18, t: 10, b: 40 };
     const pw = w - m.l - m.r;
     const ph = h - m.t - m.b;
@@ -480,12 +502,15 @@
     ctx.strokeRect(m.l - 0.5, m.t - 0.5, pw + 1, ph + 1);
     ctx.fillStyle = '#333';
     ctx.font = '11px system-ui, sans-serif';
+    const xt = xticks || [0, 1, 2, 3, 4].map((i) => {
+      const v = xr[0] + (xr[1] - xr[0]) * i / 4;
+      return { v, label: fmtNum(v, 3) };
+    });
+    ctx.textAlign = 'center';
+    for (const t of xt) ctx.fillText(t.label, X(t.v), m.t + ph + 14);
+    ctx.textAlign = 'right';
     for (let i = 0; i <= 4; i++) {
-      const xv = xr[0] + (xr[1] - xr[0]) * i / 4;
       const yv = yr[0] + (yr[1] - yr[0]) * i / 4;
-      ctx.textAlign = 'center';
-      ctx.fillText(fmtNum(xv, 3), X(xv), m.t + ph + 14);
-      ctx.textAlign = 'right';
       ctx.fillText(fmtNum(yv, 3), m.l - 5, Y(yv) + 4);
     }
     ctx.textAlign = 'center';
@@ -556,9 +581,8 @@
     }
     ctx.restore();
     drawn.counterexamples = k;
-    const text = JSON.stringify(drawn);
-    cv.dataset.drawn = text;
-    $('drawn').textContent = text;
+    // For tests and benchmarks only (read from the element), not shown on the page.
+    cv.dataset.drawn = JSON.stringify(drawn);
     M.view = f;
     const other = M.states.filter((_, i) => i !== ax && i !== ay);
     $('map-note').textContent = M.cells.size + ' leaf cells drawn' +
@@ -694,7 +718,11 @@
     }
     const t0 = pts[0].t_ms;
     const t1 = Math.max(pts[pts.length - 1].t_ms, t0 + 1);
-    const f = axesFrame(ctx, w, h, [0, (t1 - t0) / 1000], [0, 1], 'seconds since the first result', 'fraction');
+    const span = (t1 - t0) / 1000;
+    const axis = timeAxis(span);
+    const f = axesFrame(ctx, w, h, [0, span], [0, 1], axis.unit + ' since the first result', 'fraction', axis.ticks);
+    // For tests (read from the element), not shown on the page.
+    cv.dataset.ticks = JSON.stringify({ unit: axis.unit, step: axis.step, labels: axis.ticks.map((t) => t.label) });
     let base = pts.map(() => 0);
     for (const s of ['safe', 'unsafe', 'unresolved']) {
       const top = pts.map((p, i) => base[i] + p[s]);
