@@ -230,7 +230,8 @@ fn spec(model: &str) -> Value {
         "unsafe": [{"all": ["h >= 2"]}],
         "horizon_periods": 20,
         "envelope": {"h": [0.0, 1.0], "v": [-1.0, 1.0]},
-        "refinement": {"max_depth": MAX_DEPTH, "split": ["h", "v"]}
+        // Cells with a counterexample stay leaves, so the tally below counts them.
+        "refinement": {"max_depth": MAX_DEPTH, "split": ["h", "v"], "refine_unsafe": false}
     })
 }
 
@@ -333,13 +334,13 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     let leaves = 4 + tally.split;
     let pending = leaves - tally.safe - tally.unsafe_ - tally.unresolved - leased;
     let expected = json!({
-        "safe": tally.safe, "unsafe": tally.unsafe_, "unresolved": tally.unresolved,
+        "safe": tally.safe, "counterexample": tally.unsafe_, "unresolved": tally.unresolved,
         "pending": pending, "leased": leased, "failed": 0, "total": leaves,
     });
-    for s in ["safe", "unsafe", "unresolved", "pending", "leased", "failed"] {
+    for s in ["safe", "counterexample", "unresolved", "pending", "leased", "failed"] {
         assert_eq!(cells[s], expected[s], "server counter for {s} against the scripted tally {tally:?}");
     }
-    for s in ["safe", "unsafe", "unresolved", "pending", "leased"] {
+    for s in ["safe", "counterexample", "unresolved", "pending", "leased"] {
         assert!(expected[s].as_i64().unwrap() > 0, "the scenario should show some {s} cells: {expected}");
     }
     // Spread the results' times over 713 s, so that the history chart's time axis
@@ -369,7 +370,7 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
         15,
         "the map with every counterexample",
     );
-    for s in ["safe", "unsafe", "unresolved", "pending", "leased", "total"] {
+    for s in ["safe", "counterexample", "unresolved", "pending", "leased", "total"] {
         assert_eq!(drawn[s], expected[s], "cells drawn with status {s}: page drew {drawn}, expected {expected}");
     }
     assert_eq!(drawn["failed"], 0, "{drawn}");
@@ -386,9 +387,10 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     let traj_note = b.eval("document.getElementById('traj-note').textContent");
     assert!(traj_note.as_str().unwrap().starts_with(&format!("{} trajectories", tally.unsafe_)), "{traj_note}");
     let legend = b.eval("document.getElementById('map-legend').textContent");
-    for label in ["proven safe", "unsafe", "unresolved", "pending"] {
+    for label in ["proven safe", "holds a counterexample", "unresolved", "pending"] {
         assert!(legend.as_str().unwrap().contains(label), "legend: {legend}");
     }
+    assert!(!legend.as_str().unwrap().contains("unsafe"), "legend: {legend}");
     // The history chart ends at the coverage.
     let cov = api.get(&format!("/api/v1/campaigns/{id}/coverage"), &viewer);
     let note = b.wait_for("document.getElementById('history-note').textContent || null", 5, "the history chart");
@@ -557,19 +559,19 @@ fn dashboard_draws_the_changes_of_a_follow_up() {
     assert_eq!(ch["final"], true, "{ch}");
     let statuses: Vec<&str> = ch["statuses"].as_array().unwrap().iter().map(|s| s.as_str().unwrap()).collect();
     let mut expected: std::collections::BTreeMap<&str, i64> =
-        ["same", "still-safe", "newly-safe", "lost-safe", "safe-unsafe"].iter().map(|k| (*k, 0)).collect();
+        ["same", "still-safe", "newly-safe", "lost-safe", "safe-counterexample"].iter().map(|k| (*k, 0)).collect();
     for r in ch["rows"].as_array().unwrap() {
         let (f, t) = (statuses[r[0].as_u64().unwrap() as usize], statuses[r[1].as_u64().unwrap() as usize]);
         let kind = match (f == "safe", t) {
             (true, "safe") => "still-safe",
-            (true, "unsafe") => "safe-unsafe",
+            (true, "counterexample") => "safe-counterexample",
             (true, _) => "lost-safe",
             (false, "safe") => "newly-safe",
             _ => "same",
         };
         *expected.get_mut(kind).unwrap() += 1;
     }
-    for k in ["same", "still-safe", "newly-safe", "safe-unsafe"] {
+    for k in ["same", "still-safe", "newly-safe", "safe-counterexample"] {
         assert!(expected[k] > 0, "the scenario should show some '{k}' pieces: {expected:?}");
     }
     let expected = serde_json::to_value(&expected).unwrap();
@@ -585,9 +587,9 @@ fn dashboard_draws_the_changes_of_a_follow_up() {
     let rows = br.eval("document.querySelectorAll('#changes-table tbody tr').length");
     assert_eq!(rows, json!(ch["transitions"].as_array().unwrap().len()));
     let table = br.eval("document.getElementById('changes-table').textContent").as_str().unwrap().to_string();
-    assert!(table.contains(ch["summary"]["safe_to_unsafe"]["reduced"].as_str().unwrap()), "{table}");
+    assert!(table.contains(ch["summary"]["safe_to_counterexample"]["reduced"].as_str().unwrap()), "{table}");
     let legend = br.eval("document.getElementById('changes-legend').textContent");
-    assert!(legend.as_str().unwrap().contains("was safe, now unsafe"), "{legend}");
+    assert!(legend.as_str().unwrap().contains("was safe, now in a counterexample cell"), "{legend}");
     assert_eq!(br.eval("document.getElementById('ch-against').textContent"), json!(a));
     br.eval("document.getElementById('changes-view').scrollIntoView()");
     let shot = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("dashboard-changes.png");
@@ -627,7 +629,7 @@ fn benchmark_dashboard_with_100k_cells() {
     let t = Instant::now();
     let leaves = |api: &Api| {
         let c = api.get(&format!("/api/v1/campaigns/{id}"), &sub)["cells"].clone();
-        ["pending", "leased", "safe", "unsafe", "unresolved", "failed"].iter().map(|k| c[*k].as_i64().unwrap()).sum::<i64>()
+        ["pending", "leased", "safe", "counterexample", "unresolved", "failed"].iter().map(|k| c[*k].as_i64().unwrap()).sum::<i64>()
     };
     let mut tally = Tally::default();
     while leaves(&api) < 100_000 {

@@ -138,10 +138,14 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
     let status = Command::new(bin("tessera")).args(["--server", &url, "status", &id]).env("TESSERA_TOKEN", &admin).output().unwrap();
     assert!(status.status.success());
     let status_out = String::from_utf8_lossy(&status.stdout);
+    assert!(status_out.lines().any(|l| l.starts_with("counterexample ")), "a row for the counterexample volume: {status_out}");
+    assert!(!status_out.lines().any(|l| l.starts_with("unsafe ")), "{status_out}");
+    assert!(status_out.contains("counterexample: the volume of leaf cells"), "what the row counts: {status_out}");
     assert_eq!(status_out.lines().last(), Some(caution), "{status_out}");
     let wait = Command::new(bin("tessera")).args(["--server", &url, "wait", &id]).env("TESSERA_TOKEN", &admin).output().unwrap();
     assert!(wait.status.success());
     let wait_err = String::from_utf8_lossy(&wait.stderr);
+    assert!(wait_err.contains("counterexample"), "{wait_err}");
     assert_eq!(wait_err.lines().last(), Some(caution), "the final line of wait: {wait_err}");
 
     let cov = get(&cov_url, &admin);

@@ -155,8 +155,16 @@ pub struct Conjunction {
 pub struct Refinement {
     pub max_depth: u32,
     pub split: Vec<String>,
-    #[serde(default)]
+    /// Whether a cell with a counterexample is cut further, down to `max_depth`. On
+    /// when absent: a counterexample in a large cell must not end the search for the
+    /// safe volume inside it. Always written out in the canonical document, so a
+    /// stored campaign keeps the value it was created with.
+    #[serde(default = "yes")]
     pub refine_unsafe: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 /// Which set representation carries the state between periods.
@@ -911,6 +919,18 @@ mod tests {
         let mut v = example();
         v["dynamics"]["h"] = serde_json::json!("q / (1 + h^2)");
         assert!(errors_of(v).is_empty());
+    }
+
+    #[test]
+    fn cells_with_counterexamples_are_refined_unless_the_spec_says_not() {
+        let mut v = example();
+        v["refinement"].as_object_mut().unwrap().remove("refine_unsafe");
+        let s = parse_spec(&v.to_string()).unwrap();
+        assert!(s.refine_unsafe);
+        // The canonical document states the default, so its hash pins the behaviour.
+        assert!(s.canonical_json().contains("\"refine_unsafe\":true"), "{}", s.canonical_json());
+        v["refinement"]["refine_unsafe"] = serde_json::json!(false);
+        assert!(!parse_spec(&v.to_string()).unwrap().refine_unsafe);
     }
 
     #[test]
