@@ -201,8 +201,8 @@ async fn main() -> anyhow::Result<()> {
     }
     let sm = &diff["summary"];
     println!(
-        "follow-up against A: safe→unsafe {}, no longer safe {}, newly safe {}, still safe {}",
-        sm["safe_to_unsafe"]["reduced"], sm["no_longer_safe"]["reduced"], sm["newly_safe"]["reduced"], sm["still_safe"]["reduced"]
+        "follow-up against A: safe→counterexample {}, no longer safe {}, newly safe {}, still safe {}",
+        sm["safe_to_counterexample"]["reduced"], sm["no_longer_safe"]["reduced"], sm["newly_safe"]["reduced"], sm["still_safe"]["reduced"]
     );
     server.stop().await?;
     Ok(())
