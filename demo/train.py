@@ -253,7 +253,7 @@ class Lander:
             ],
             "horizon_periods": cls.horizon,
             "envelope": {"h": [1.0, 10.0], "v": [-4.0, 1.0]},
-            "refinement": {"max_depth": 10, "split": ["h", "v"], "refine_unsafe": False},
+            "refinement": {"max_depth": 10, "split": ["h", "v"]},
             # Measured best for this scenario (BENCHMARKS.md, engine options): box sets with
             # interval network bounds, decision pieces cut along the widest state.
             "engine": {"set": "box", "bounds": "interval", "decision_split": "widest"},
@@ -399,7 +399,7 @@ class Aisle:
             ],
             "horizon_periods": cls.horizon,
             "envelope": {"px": [0.0, 0.4], "py": [-0.8, 0.8], "th": [-0.15, 0.15], "v": [0.97, 1.03]},
-            "refinement": {"max_depth": 12, "split": ["py", "th", "px"], "refine_unsafe": False},
+            "refinement": {"max_depth": 12, "split": ["py", "th", "px"]},
         }
 
 

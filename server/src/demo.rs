@@ -106,10 +106,10 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         }
         let depth = spec["refinement"]["max_depth"].as_u64().unwrap_or(8).min(opts.max_depth as u64);
         spec["refinement"]["max_depth"] = depth.into();
-        // Cells with counterexamples are refined down to max depth (the default since
-        // refine_unsafe defaults to true), also where a spec file still turns it off:
-        // otherwise one counterexample in a large cell ends the search for the safe
-        // volume inside it.
+        // Cells with counterexamples are refined down to max depth: the default, which
+        // the embedded specs keep; set here as well so that a spec edited to turn it off
+        // still gets a coverage map, since otherwise one counterexample in a large cell
+        // ends the search for the safe volume inside it.
         spec["refinement"]["refine_unsafe"] = true.into();
         demo_engine_knobs(&mut spec);
         let body = serde_json::to_vec(&spec)?;
