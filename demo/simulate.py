@@ -126,15 +126,19 @@ class ClosedLoop:
         e = self.env(x, u, d)
         return np.stack([np.broadcast_to(r(e), (len(x),)).astype(float) for r in self.rhs], axis=1)
 
-    def is_unsafe(self, x):
+    def unsafe_region(self, x):
+        """Index of the first unsafe region (in spec order) that holds each state, or -1."""
         e = self.env(x)
-        out = np.zeros(len(x), dtype=bool)
-        for conj in self.unsafe:
+        out = np.full(len(x), -1)
+        for i, conj in enumerate(self.unsafe):
             part = np.ones(len(x), dtype=bool)
             for c in conj:
                 part &= np.broadcast_to(c(e), (len(x),))
-            out |= part
+            out = np.where((out < 0) & part, i, out)
         return out
+
+    def is_unsafe(self, x):
+        return self.unsafe_region(x) >= 0
 
     def draw(self, rng, lo, hi, n, mode):
         if mode == "extreme":
@@ -156,18 +160,22 @@ class ClosedLoop:
         return cmd, nets
 
     def run(self, x0, rng, steps, mode):
-        """Returns (unsafe flag, first unsafe time, command changes, network changes)."""
+        """Returns (unsafe flag, first unsafe time, command changes, network changes, final
+        state, number of distinct networks used, first unsafe region or -1) per trajectory."""
         n = len(x0)
         x = x0.copy()
         prev = np.array([self.initial[i % len(self.initial)] for i in range(n)])
         prev_net = self.net_of_cmd[prev]
-        bad = self.is_unsafe(x)
+        region = self.unsafe_region(x)
+        bad = region >= 0
         t_bad = np.where(bad, 0.0, np.inf)
         cmd_changes = np.zeros(n, dtype=int)
         net_changes = np.zeros(n, dtype=int)
+        nets_used = np.zeros((n, len(self.sessions)), dtype=bool)
         dt = self.period / steps
         for k in range(self.horizon):
             cmd, nets = self.decide(x, prev, rng, mode)
+            nets_used[np.arange(n), nets] = True
             if k > 0:
                 net_changes += nets != prev_net
             cmd_changes += cmd != prev
@@ -179,11 +187,13 @@ class ClosedLoop:
                 k3 = self.f(x + 0.5 * dt * k2, u, d)
                 k4 = self.f(x + dt * k3, u, d)
                 x = x + dt / 6.0 * (k1 + 2 * k2 + 2 * k3 + k4)
-                now = self.is_unsafe(x) & ~bad
+                hit = self.unsafe_region(x)
+                now = (hit >= 0) & ~bad
                 t_bad[now] = k * self.period + (s + 1) * dt
+                region[now] = hit[now]
                 bad |= now
             prev, prev_net = cmd, nets
-        return bad, t_bad, cmd_changes, net_changes, x
+        return bad, t_bad, cmd_changes, net_changes, x, nets_used.sum(axis=1), region
 
 
 def main():
@@ -198,7 +208,7 @@ def main():
     loop = ClosedLoop(a.spec)
     rng = np.random.default_rng(a.seed)
     x0 = loop.env_lo + (loop.env_hi - loop.env_lo) * rng.random((a.n, len(loop.states)))
-    bad, t_bad, cmd_ch, net_ch, _ = loop.run(x0, rng, a.steps, a.mode)
+    bad, t_bad, cmd_ch, net_ch, _, n_used, region = loop.run(x0, rng, a.steps, a.mode)
     name = loop.spec["name"]
     print(f"{name}: {a.n} trajectories, horizon {loop.horizon} x {loop.period} s, {a.steps} RK4 steps/period, "
           f"disturbance/noise mode {a.mode}, seed {a.seed}")
@@ -209,8 +219,12 @@ def main():
     if len(loop.sessions) > 1:
         print(f"  network switches per trajectory: mean {net_ch.mean():.2f}; "
               f"trajectories that use more than one network: {np.mean(net_ch > 0):.3f}")
+        print(f"  networks used per trajectory: mean {n_used.mean():.2f} of {len(loop.sessions)}; "
+              + ", ".join(f"{k}: {np.mean(n_used == k):.3f}" for k in range(1, len(loop.sessions) + 1)))
     if bad.any():
         print(f"  first unsafe time: median {np.median(t_bad[bad]):.2f} s")
+        for i, conj in enumerate(loop.spec["unsafe"]):
+            print(f"  first entered through unsafe[{i}] ({' and '.join(conj['all'])}): {np.mean(region == i):.4f}")
     if a.grid:
         ia, ib = loop.states.index(a.grid[0]), loop.states.index(a.grid[1])
         ea = np.linspace(loop.env_lo[ia], loop.env_hi[ia], 7)

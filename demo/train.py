@@ -3,8 +3,9 @@
 
 Two scenarios of our own (see demo/README.md):
   lander  2 states, linear flight with a landing-gear contact, one network, 5 thrust levels
-  rover   4 states, unicycle kinematics past a pillar, a bank of 5 networks chosen by
-          the previous command, 5 steering commands
+  aisle   4 states, unicycle kinematics down a warehouse aisle past two staggered crates
+          to a walkway, a bank of 4 networks chosen by the previous command, 4 commands
+          that set a turn rate and a speed
 
 For each scenario an expert rule of our own labels sampled observations; small ReLU
 networks are fitted to the labels with plain numpy backprop and Adam (fixed seeds), then
@@ -12,7 +13,7 @@ exported to ONNX with DOUBLE (float64) tensors: Gemm (transB = 1) and Relu nodes
 The spec files are generated from the same constants, so the normalization and the
 command table the networks were trained with are the ones the spec states.
 
-Run:  python3 demo/train.py            (writes demo/lander/* and demo/rover/*)
+Run:  python3 demo/train.py            (writes demo/lander/* and demo/aisle/*)
 Importing this module trains nothing: `forward`, the experts and the constants are reusable
 (tests/reference/check_demo_networks.py imports `forward`).
 """
@@ -252,7 +253,7 @@ class Lander:
             ],
             "horizon_periods": cls.horizon,
             "envelope": {"h": [1.0, 10.0], "v": [-4.0, 1.0]},
-            "refinement": {"max_depth": 10, "split": ["h", "v"], "refine_unsafe": False},
+            "refinement": {"max_depth": 10, "split": ["h", "v"]},
             # Measured best for this scenario (BENCHMARKS.md, engine options): box sets with
             # interval network bounds, decision pieces cut along the widest state.
             "engine": {"set": "box", "bounds": "interval", "decision_split": "widest"},
@@ -260,105 +261,106 @@ class Lander:
 
 
 # ---------------------------------------------------------------------------
-# Scenario "rover"
+# Scenario "aisle"
 # ---------------------------------------------------------------------------
 
 
-class Rover:
-    name = "rover"
-    period = 0.25  # s
-    horizon = 16  # periods: 4 s, the time it takes to pass the pillar
-    half_width = 1.5  # m, aisle |py| < half_width
-    cx, cy, r = 4.0, 0.3, 0.5  # pillar centre and radius, m
-    # (name, turn rate rad/s, cruise speed m/s)
+class Aisle:
+    name = "aisle"
+    period = 0.35  # s
+    horizon = 17  # periods: 5.95 s, the time it takes to pass both crates and reach the walkway
+    # Geometry in the rover's configuration space: the racks and crates are grown by the
+    # rover's 0.3 m radius, so the rover is its centre point (common practice in motion
+    # planning). px runs along the aisle, py across it (positive to port), in m.
+    wall = 1.0  # racks: |py| < 1.0
+    port_crate = (1.4, 2.1, 0.3)  # px in [1.4, 2.1], py >= 0.3
+    starboard_crate = (2.7, 3.4, -0.3)  # px in [2.7, 3.4], py <= -0.3
+    walkway = (3.9, 4.3)  # a walkway across the aisle's end, px in [3.9, 4.3] ...
+    walkway_speed = 0.8  # ... to be crossed below 0.8 m/s
+    # (name, turn rate rad/s, speed set-point m/s): straight at two speeds, or a turn
+    # to either side at reduced speed. Four commands, so a bank of four networks.
     commands = [
-        ("hard_left", 0.7, 0.7),
-        ("left", 0.3, 0.9),
-        ("straight", 0.0, 1.0),
-        ("right", -0.3, 0.9),
-        ("hard_right", -0.7, 0.7),
+        ("cruise", 0.0, 1.0),
+        ("creep", 0.0, 0.5),
+        ("veer_port", 0.4, 0.55),
+        ("veer_starboard", -0.4, 0.55),
     ]
-    speed_gain = 0.8  # 1/s, speed loop toward the cruise speed
-    speed_dist = 0.05  # m/s^2, speed disturbance bound
-    noise = [0.02, 0.008, 0.012, 0.008, 0.02]
-    offset = [2.5, 0.0, 0.0, 0.0, 2.0]
-    scale = [2.0, 1.0, 1.0, 0.5, 2.5]
-    hidden = [32, 32]
+    speed_gain = 1.5  # 1/s, speed loop toward the set-point
+    speed_dist = 0.08  # m/s^2, speed disturbance bound (floor slope, wheel slip)
+    obs_names = ["station", "offset", "heading"]
+    noise = [0.03, 0.02, 0.01]  # m, m, rad
+    offset = [2.0, 0.0, 0.0]
+    scale = [2.0, 0.6, 0.3]
+    hidden = [24, 16]
     samples = 30000
     epochs = 30
-    seed = 20262
-
-    # Observation expressions over the states (spec language) and the same in numpy.
-    obs_names = ["pillar_distance", "pillar_bearing", "aisle_offset", "heading", "pillar_ahead"]
+    seed = 20263
+    # Expert rule constants (see `expert`).
+    heading_gain, heading_limit = 0.7, 0.3  # rad/m, rad
+    turn_gain = 1.5  # 1/s
+    veer_on, veer_off = 0.25, 0.05  # rad/s of wanted turn: start veering / stop veering
+    slow_from, slow_keep_from = 2.8, 2.7  # station from which to creep (after cruising / once slowed)
 
     @classmethod
     def obs_exprs(cls):
-        dx, dy = f"({cls.cx} - px)", f"({cls.cy} - py)"
-        xb = f"({dx} * cos(th) + {dy} * sin(th))"
-        yb = f"({dy} * cos(th) - {dx} * sin(th))"
-        return [
-            f"sqrt({dx}^2 + {dy}^2)",
-            # Folded to the front half-plane (|x_body|), so the angle never crosses the
-            # branch cut of atan2 while the robot is clear of the pillar.
-            f"atan2({yb}, abs({xb}))",
-            "py",
-            "th",
-            f"{cls.cx} - px",
-        ]
+        return ["px", "py", "th"]
 
     @classmethod
     def observe(cls, x):
-        px, py, th = x[:, 0], x[:, 1], x[:, 2]
-        dx, dy = cls.cx - px, cls.cy - py
-        xb = dx * np.cos(th) + dy * np.sin(th)
-        yb = dy * np.cos(th) - dx * np.sin(th)
-        return np.stack([np.sqrt(dx**2 + dy**2), np.arctan2(yb, np.abs(xb)), py, th, dx], axis=1)
+        return np.asarray(x, dtype=np.float64)[:, :3].copy()
 
     @classmethod
     def expert(cls, obs, prev):
-        """Command index for observations and the previous command. Keep to the middle of
-        the gap on the robot's side of the pillar (the wide right gap unless the robot is
-        well left of the pillar's centre), steering toward it gently (heading limited to
-        0.4 rad); before the pillar and close to it, turn away from it. Keep the previous
-        command while it is within 0.25 rad/s of the wanted turn rate (hysteresis, hence
-        one network per previous command). The gentle gains and the wide hysteresis make
-        a calm driver that goes straight most of the time."""
-        dist, bearing, py, th, ahead = (obs[:, i] for i in range(5))
-        rates = np.array([c[1] for c in cls.commands])
-        left_gap = 0.5 * (cls.cy + cls.r + cls.half_width)
-        right_gap = 0.5 * (cls.cy - cls.r - cls.half_width)
-        before = ahead > -0.3
-        y_ref = np.where(py > cls.cy + 0.15, left_gap, right_gap)
-        th_ref = np.clip(0.6 * (y_ref - py), -0.4, 0.4)
-        want = 1.2 * (th_ref - th)
-        close = before & (dist < cls.r + 0.3) & (np.abs(bearing) < 1.0)
-        want = np.where(close, -np.sign(bearing) * 0.8, want)
-        nearest = np.argmin(np.abs(want[:, None] - rates[None, :]), axis=1)
-        keep = np.abs(rates[prev] - want) <= 0.25
-        return np.where(keep, prev, nearest)
+        """Command index for observations [station, offset, heading] and the previous
+        command. Steer toward the aisle's centre line, which passes both crates with
+        0.3 m to spare: wanted heading clip(-0.7 py, +-0.3 rad), wanted turn
+        1.5 (wanted heading - heading). Veer to the wanted side once the wanted turn
+        exceeds 0.25 rad/s, and keep veering until it drops below 0.05 rad/s; otherwise
+        go straight: cruise, or creep from station 2.8 m on (2.7 m once slowed by
+        creeping or veering). The walkway starts at 3.9 m; creeping from cruise speed
+        takes about 0.35 m to get below 0.8 m/s, so a decision one period late still
+        leaves room. Both thresholds depend on the previous command (hysteresis),
+        hence one network per previous command. The wide dead band around the centre
+        line makes a calm driver that goes straight most of the time."""
+        px, py, th = obs[:, 0], obs[:, 1], obs[:, 2]
+        th_ref = np.clip(-cls.heading_gain * py, -cls.heading_limit, cls.heading_limit)
+        want = cls.turn_gain * (th_ref - th)
+        slow = np.where(prev == 0, px >= cls.slow_from, px >= cls.slow_keep_from)
+        straight = np.where(slow, 1, 0)
+        out = np.where(want > cls.veer_on, 2, np.where(want < -cls.veer_on, 3, straight))
+        out = np.where((prev == 2) & (want > cls.veer_off), 2, out)
+        out = np.where((prev == 3) & (want < -cls.veer_off), 3, out)
+        return out
 
     @classmethod
     def sample_states(cls, rng, n):
-        px = rng.uniform(1.0, 10.0, n)
-        py = rng.uniform(-1.6, 1.6, n)
-        th = rng.uniform(-1.2, 1.2, n)
-        v = rng.uniform(0.5, 1.2, n)
+        px = rng.uniform(-0.3, 4.6, n)
+        py = rng.uniform(-1.05, 1.05, n)
+        th = rng.uniform(-0.6, 0.6, n)
+        v = rng.uniform(0.4, 1.1, n)
         return np.stack([px, py, th, v], axis=1)
 
     @classmethod
     def spec(cls):
+        a, b, c = cls.port_crate
+        d, e, f = cls.starboard_crate
+        x0, x1 = cls.walkway
         return {
             "version": 1,
-            "name": "rover",
+            "name": "aisle",
             "description": (
-                "A wheeled robot drives along a 3 m wide aisle past a round pillar (centre (4, 0.3) m, "
-                "radius 0.5 m). Unicycle kinematics: position px, py (m), heading th (rad), speed v (m/s). "
-                "Five steering commands set a turn rate and a cruise speed; the speed follows the cruise "
-                "speed with gain 0.8 1/s plus a disturbance of at most 0.05 m/s^2. The network that decides "
-                "is the one of the previous command (a bank of five). Observations: distance and bearing "
-                "(relative to the heading, folded to the front) to the pillar, offset in the aisle, heading, "
-                "and the distance still to go to the pillar, each with noise. Unsafe: inside the pillar's "
-                "disc or touching an aisle wall. All values are our own choices for this demo."
+                "A wheeled rover drives down a warehouse aisle past two staggered crates, one on each "
+                "side, toward a walkway across the aisle's end. States: position px along the aisle and py "
+                "across it (m, positive to port), heading th (rad), speed v (m/s); unicycle kinematics "
+                "(common practice). Racks and crates are grown by the rover's 0.3 m radius: racks at "
+                f"|py| >= {cls.wall}, the port crate at px in [{a}, {b}] with py >= {c}, the starboard "
+                f"crate at px in [{d}, {e}] with py <= {f}. The walkway (px in [{x0}, {x1}]) must be "
+                f"crossed below {cls.walkway_speed} m/s (people walk there). Four commands: cruise straight, creep straight, "
+                "veer to port or to starboard at reduced speed; the speed follows the command's set-point "
+                f"with gain {cls.speed_gain} 1/s plus a disturbance of at most {cls.speed_dist} m/s^2. The "
+                "network that decides is the one of the previous command (a bank of four). Observations: "
+                "station along the aisle, offset across it, heading, each with noise. All values are our "
+                "own choices for this demo."
             ),
             "states": [
                 {"name": "px", "unit": "m"},
@@ -366,36 +368,38 @@ class Rover:
                 {"name": "th", "unit": "rad"},
                 {"name": "v", "unit": "m/s"},
             ],
-            "inputs": [{"name": "turn", "unit": "rad/s"}, {"name": "cruise", "unit": "m/s"}],
+            "inputs": [{"name": "turn", "unit": "rad/s"}, {"name": "speed", "unit": "m/s"}],
             "disturbances": [{"name": "w", "range": [-cls.speed_dist, cls.speed_dist], "unit": "m/s^2"}],
             "dynamics": {
                 "px": "v * cos(th)",
                 "py": "v * sin(th)",
                 "th": "turn",
-                "v": f"{cls.speed_gain} * (cruise - v) + w",
+                "v": f"{cls.speed_gain} * (speed - v) + w",
             },
             "controller": {
                 "period": cls.period,
                 "latency_periods": 0,
                 "observations": [
-                    {"name": n, "expr": e, "noise": [-z, z]}
-                    for n, e, z in zip(cls.obs_names, cls.obs_exprs(), cls.noise)
+                    {"name": n, "expr": x, "noise": [-z, z]}
+                    for n, x, z in zip(cls.obs_names, cls.obs_exprs(), cls.noise)
                 ],
                 "normalization": {"offset": cls.offset, "scale": cls.scale},
                 "networks": [f"net_{n}.onnx" for n, _, _ in cls.commands],
                 "selection": {"mode": "previous_command", "network_of_command": list(range(len(cls.commands)))},
                 "decision": "argmax",
-                "commands": [{"name": n, "set": {"turn": t, "cruise": s}} for n, t, s in cls.commands],
-                "initial_command": "straight",
+                "commands": [{"name": n, "set": {"turn": t, "speed": s}} for n, t, s in cls.commands],
+                "initial_command": "cruise",
             },
             "unsafe": [
-                {"all": [f"(px - {cls.cx})^2 + (py - {cls.cy})^2 <= {cls.r}^2"]},
-                {"all": [f"py >= {cls.half_width}"]},
-                {"all": [f"py <= -{cls.half_width}"]},
+                {"all": [f"px >= {a}", f"px <= {b}", f"py >= {c}"]},
+                {"all": [f"px >= {d}", f"px <= {e}", f"py <= {f}"]},
+                {"all": [f"px >= {x0}", f"px <= {x1}", f"v >= {cls.walkway_speed}"]},
+                {"all": [f"py >= {cls.wall}"]},
+                {"all": [f"py <= -{cls.wall}"]},
             ],
             "horizon_periods": cls.horizon,
-            "envelope": {"px": [2.0, 3.0], "py": [-1.2, 1.2], "th": [-0.2, 0.2], "v": [0.98, 1.02]},
-            "refinement": {"max_depth": 12, "split": ["py", "th", "px"], "refine_unsafe": False},
+            "envelope": {"px": [0.0, 0.4], "py": [-0.8, 0.8], "th": [-0.15, 0.15], "v": [0.97, 1.03]},
+            "refinement": {"max_depth": 12, "split": ["py", "th", "px"]},
         }
 
 
@@ -408,7 +412,7 @@ def normalize(cls, obs):
     return (obs - np.array(cls.offset)) / np.array(cls.scale)
 
 
-SCENARIOS = {"lander": Lander, "rover": Rover}
+SCENARIOS = {"lander": Lander, "aisle": Aisle}
 
 
 def labelled_sample(cls, rng, n, prev_command):
@@ -447,11 +451,11 @@ def run_lander():
     print(f"lander: network {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
 
 
-def run_rover():
-    cls = Rover
+def run_aisle():
+    cls = Aisle
     rng = np.random.default_rng(cls.seed)
-    os.makedirs(os.path.join(HERE, "rover"), exist_ok=True)
-    sizes = [5] + cls.hidden + [len(cls.commands)]
+    os.makedirs(os.path.join(HERE, "aisle"), exist_ok=True)
+    sizes = [len(cls.obs_names)] + cls.hidden + [len(cls.commands)]
     for c, (cname, _, _) in enumerate(cls.commands):
         x_tr, x_te = cls.sample_states(rng, cls.samples), cls.sample_states(rng, 20000)
         o_tr, o_te = cls.observe(x_tr), cls.observe(x_te)
@@ -462,20 +466,20 @@ def run_rover():
         acc_te = accuracy(layers, normalize(cls, o_te), y_te)
         export_onnx(
             layers,
-            os.path.join(HERE, "rover", f"net_{cname}.onnx"),
-            f"demo rover controller used after command '{cname}': obs {cls.obs_names} normalized",
+            os.path.join(HERE, "aisle", f"net_{cname}.onnx"),
+            f"demo aisle controller used after command '{cname}': obs {cls.obs_names} normalized",
         )
-        print(f"rover: network after '{cname}' {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
+        print(f"aisle: network after '{cname}' {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
     write_spec(cls)
 
 
 def main():
     t0 = time.perf_counter()
-    which = sys.argv[1:] or ["lander", "rover"]
+    which = sys.argv[1:] or ["lander", "aisle"]
     if "lander" in which:
         run_lander()
-    if "rover" in which:
-        run_rover()
+    if "aisle" in which:
+        run_aisle()
     print(f"training took {time.perf_counter() - t0:.1f} s")
 
 

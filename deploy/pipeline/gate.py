@@ -9,20 +9,22 @@ GET /api/v1/campaigns/{id}/coverage until the campaign is finished, then compare
 proven-safe fraction of the envelope with --min-safe.
 
 With --follow-up ID the campaign starts from the cells of the finished campaign ID (the
-previous version's; same envelope and split states). With --no-new-unsafe the gate also
-reads GET /api/v1/campaigns/{id}/changes and fails when any volume proven safe in the
-campaign followed up is unsafe now (an exact fraction, compared as "0/1").
+previous version's; same envelope and split states). With --no-new-counterexample (earlier
+name: --no-new-unsafe) the gate also reads GET /api/v1/campaigns/{id}/changes and fails
+when any volume proven safe in the campaign followed up now lies in a cell holding a
+checked counterexample (an exact fraction, compared as "0/1").
 
-Exit status: 0 pass, 1 proven-safe fraction below --min-safe, new unsafe volume with
---no-new-unsafe (or the campaign failed), 2 usage, input, HTTP or timeout error.
+Exit status: 0 pass, 1 proven-safe fraction below --min-safe, new counterexample volume
+with --no-new-counterexample (or the campaign failed), 2 usage, input, HTTP or timeout error.
 
-A pass is engineering evidence under the spec's model assumptions, not a certification;
+With its verdict the gate prints the server's caution (the coverage answer's `caution`):
+a pass is engineering evidence under the spec's model assumptions, not a certification;
 release decisions for a real system follow the applicable safety standards and the
 responsible certification authority.
 
 Stdlib only (urllib). Usage:
   python3 deploy/pipeline/gate.py --server http://127.0.0.1:8080 --spec demo/lander/spec.json \
-      --min-safe 0.9 [--follow-up PREVIOUS_ID --no-new-unsafe] [--token TOKEN | env TESSERA_TOKEN]
+      --min-safe 0.9 [--follow-up PREVIOUS_ID --no-new-counterexample] [--token TOKEN | env TESSERA_TOKEN]
 """
 
 # --- Wire format: every field and path name of the server API used here, in one place. ---
@@ -38,11 +40,12 @@ FAILED_STATES = {"cancelled"}
 FRACTIONS_FIELD = "statuses"  # in the coverage answer: {"safe": {"fraction": x, ...}, ...}
 FRACTION_FIELD = "fraction"  # inside each status
 SAFE_FIELD = "safe"
+CAUTION_FIELD = "caution"  # in the coverage answer: the text to print with the verdict
 TOKEN_ENV = "TESSERA_TOKEN"
 FOLLOW_UP_PARAM = "follow_up"  # query parameter of the campaign creation
 CHANGES_PATH = "/api/v1/campaigns/{id}/changes"
 SUMMARY_FIELD = "summary"  # in the changes answer
-SAFE_TO_UNSAFE_FIELD = "safe_to_unsafe"  # inside the summary: {"reduced": "p/q", "fraction": x, ...}
+SAFE_TO_COUNTEREXAMPLE_FIELD = "safe_to_counterexample"  # inside the summary: {"reduced": "p/q", "fraction": x, ...}
 EXACT_FIELD = "reduced"
 ZERO_FRACTION = "0/1"
 # ----------------------------------------------------------------------------------------
@@ -147,8 +150,9 @@ def main(argv=None):
     ap.add_argument("--spec", required=True, help="campaign spec (JSON); network paths relative to it")
     ap.add_argument("--min-safe", type=float, required=True, help="least proven-safe fraction to pass, in [0, 1]")
     ap.add_argument("--follow-up", metavar="CAMPAIGN_ID", help="start from the cells of this finished campaign")
-    ap.add_argument("--no-new-unsafe", action="store_true",
-                    help="also fail when volume proven safe in the campaign followed up is unsafe now")
+    ap.add_argument("--no-new-counterexample", "--no-new-unsafe", dest="no_new_counterexample", action="store_true",
+                    help="also fail when volume proven safe in the campaign followed up now lies in a cell "
+                         "holding a checked counterexample")
     ap.add_argument("--token", default=os.environ.get(TOKEN_ENV), help=f"API token (default: ${TOKEN_ENV})")
     ap.add_argument("--poll-s", type=float, default=5.0, help="seconds between coverage polls")
     ap.add_argument("--timeout-s", type=float, default=3600.0, help="give up after this many seconds")
@@ -156,8 +160,8 @@ def main(argv=None):
     if not 0.0 <= a.min_safe <= 1.0:
         print("error: --min-safe must be in [0, 1]", file=sys.stderr)
         return EXIT_ERROR
-    if a.no_new_unsafe and not a.follow_up:
-        print("error: --no-new-unsafe needs --follow-up (the campaign to compare with)", file=sys.stderr)
+    if a.no_new_counterexample and not a.follow_up:
+        print("error: --no-new-counterexample needs --follow-up (the campaign to compare with)", file=sys.stderr)
         return EXIT_ERROR
     try:
         with open(a.spec) as f:
@@ -185,26 +189,29 @@ def main(argv=None):
         safe = field(fractions, SAFE_FIELD, f"coverage.{FRACTIONS_FIELD}")
         if not isinstance(safe, (int, float)) or isinstance(safe, bool) or not 0.0 <= safe <= 1.0:
             raise GateError(f"coverage.{FRACTIONS_FIELD}.{SAFE_FIELD}.{FRACTION_FIELD} is not a fraction: {safe!r}")
-        new_unsafe = None
-        if a.no_new_unsafe:
+        caution = field(cov, CAUTION_FIELD, "coverage")
+        new_cx = None
+        if a.no_new_counterexample:
             path = CHANGES_PATH.format(id=cid)
             changes = request(a.server, "GET", path, a.token)
-            s2u = field(field(changes, SUMMARY_FIELD, f"GET {path}"), SAFE_TO_UNSAFE_FIELD, f"GET {path} {SUMMARY_FIELD}")
-            new_unsafe = field(s2u, EXACT_FIELD, f"GET {path} {SUMMARY_FIELD}.{SAFE_TO_UNSAFE_FIELD}")
+            s2c = field(field(changes, SUMMARY_FIELD, f"GET {path}"), SAFE_TO_COUNTEREXAMPLE_FIELD,
+                        f"GET {path} {SUMMARY_FIELD}")
+            new_cx = field(s2c, EXACT_FIELD, f"GET {path} {SUMMARY_FIELD}.{SAFE_TO_COUNTEREXAMPLE_FIELD}")
     except GateError as e:
         print(f"error: {e}", file=sys.stderr)
         return EXIT_ERROR
     others = ", ".join(f"{k} {v:.4f}" for k, v in fractions.items() if k != SAFE_FIELD and isinstance(v, (int, float)))
     print(f"proven safe {safe:.4f} of the envelope (required {a.min_safe:.4f}){'; ' + others if others else ''}")
-    print("This is engineering evidence under the spec's model assumptions, not a certification.")
+    print(caution)
     if safe < a.min_safe:
         print("FAIL: proven-safe fraction below the required minimum")
         return EXIT_BELOW
-    if new_unsafe is not None:
-        if new_unsafe != ZERO_FRACTION:
-            print(f"FAIL: {new_unsafe} of the envelope was proven safe in campaign {a.follow_up} and is unsafe now")
+    if new_cx is not None:
+        if new_cx != ZERO_FRACTION:
+            print(f"FAIL: {new_cx} of the envelope was proven safe in campaign {a.follow_up} "
+                  "and lies in cells with a counterexample now")
             return EXIT_BELOW
-        print(f"no volume proven safe in campaign {a.follow_up} is unsafe now")
+        print(f"no volume proven safe in campaign {a.follow_up} lies in a cell with a counterexample now")
     print("PASS")
     return EXIT_PASS
 

@@ -3,7 +3,7 @@
 //! the previous campaign's partition instead of the whole envelope.
 //!
 //!     cargo run --release -p tessera-server --example bench_followup -- \
-//!         [--scenario rover|lander] [--depth D] [--horizon N] [--seed S] [--threads T]
+//!         [--scenario aisle|lander] [--depth D] [--horizon N] [--seed S] [--threads T]
 //!
 //! Steps, with an in-process server and an in-process worker (T engine threads):
 //! 1. campaign A: the committed demo bank (`demo/SCENARIO/`, read at run time), to the
@@ -36,7 +36,7 @@ struct Args {
 }
 
 fn parse_args() -> anyhow::Result<Args> {
-    let mut a = Args { scenario: "rover".into(), depth: 8, horizon: None, seed: 20301, threads: 2 };
+    let mut a = Args { scenario: "aisle".into(), depth: 8, horizon: None, seed: 20301, threads: 2 };
     let mut it = std::env::args().skip(1);
     while let Some(k) = it.next() {
         let mut val = || it.next().ok_or_else(|| anyhow::anyhow!("{k} needs a value"));
@@ -49,7 +49,7 @@ fn parse_args() -> anyhow::Result<Args> {
             _ => anyhow::bail!("unknown argument {k}"),
         }
     }
-    anyhow::ensure!(a.scenario == "rover" || a.scenario == "lander", "--scenario is rover or lander");
+    anyhow::ensure!(a.scenario == "aisle" || a.scenario == "lander", "--scenario is aisle or lander");
     Ok(a)
 }
 
@@ -201,8 +201,8 @@ async fn main() -> anyhow::Result<()> {
     }
     let sm = &diff["summary"];
     println!(
-        "follow-up against A: safe→unsafe {}, no longer safe {}, newly safe {}, still safe {}",
-        sm["safe_to_unsafe"]["reduced"], sm["no_longer_safe"]["reduced"], sm["newly_safe"]["reduced"], sm["still_safe"]["reduced"]
+        "follow-up against A: safe→counterexample {}, no longer safe {}, newly safe {}, still safe {}",
+        sm["safe_to_counterexample"]["reduced"], sm["no_longer_safe"]["reduced"], sm["newly_safe"]["reduced"], sm["still_safe"]["reduced"]
     );
     server.stop().await?;
     Ok(())

@@ -118,7 +118,7 @@ mod tests {
         let t = new_token();
         assert_eq!(t.len(), 4 + 64);
         assert_ne!(t, new_token());
-        // SHA-256("abc"), FIPS 180-2 appendix B.1.
+        // SHA-256("abc"): FIPS 180-4, one-block example of NIST's published example values.
         assert_eq!(hash_token("abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
         assert!(constant_time_eq(b"abc", b"abc"));
         assert!(!constant_time_eq(b"abc", b"abd"));

@@ -5,18 +5,19 @@ use crate::error::{ApiError, ApiResult};
 use crate::leases::{self, QueueLimits};
 use crate::model_check;
 use crate::refine::{self, CellBox};
-use crate::store::{now_ms, CampaignInfo, Deltas, Store, ALL_STATUSES, LEAF_STATUSES};
+use crate::store::{self, now_ms, CampaignInfo, Deltas, Store, ALL_STATUSES, LEAF_STATUSES, SHOWN_LEAF_STATUSES, SHOWN_STATUSES};
 use serde::Serialize;
 use serde_json::{json, Value};
 use sha2::Digest;
 use sqlx::Row;
 use std::collections::HashMap;
+use tessera_worker::caution::CAUTION;
 use tessera_worker::engine::spec::{self, NetworkShape};
 
-/// The safety caution carried by every report.
-pub const CAUTION: &str = "These results are engineering evidence under the stated model assumptions \
-(dynamics, disturbance and noise bounds, envelope, horizon, and the networks as uploaded), not a \
-certification. They defer to the applicable safety standards and to the responsible certification authority.";
+/// What the coverage answer and the reports say of the `counterexample` status.
+pub const COUNTEREXAMPLE_NOTE: &str = "counterexample: the volume of leaf cells that each hold a re-checked \
+counterexample, an upper bound on the unsafe initial states in those cells and not a measure of them (more \
+may lie in unresolved, failed or open cells)";
 
 /// Deepest uniform pre-split allowed at creation (2^16 leaves).
 pub const MAX_INITIAL_DEPTH: u32 = 16;
@@ -53,7 +54,8 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
         .map_err(|e| ApiError::bad_request(format!("the spec must be UTF-8 JSON: {e}")))?;
     let spec = spec::parse_spec(text).map_err(ApiError::invalid_spec)?;
 
-    let mut shapes: Vec<Option<NetworkShape>> = Vec::new();
+    // The engine's model checks (`Spec::check_network`) on every referenced model.
+    let mut model_errors = Vec::new();
     for (i, r) in spec.networks.iter().enumerate() {
         let field = format!("controller.networks[{i}]");
         let Some(hash) = r.strip_prefix("sha256:") else {
@@ -63,18 +65,23 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
             )
             .field(field));
         };
-        match store.model_shape(hash).await? {
+        let shape = match store.model_shape(hash).await? {
             None => {
                 return Err(ApiError::unprocessable("model_not_found", format!("no uploaded model with sha256 {hash}"))
                     .field(field))
             }
-            Some((Some(i), Some(o))) => shapes.push(Some(NetworkShape { inputs: i as usize, outputs: o as usize })),
-            Some(_) => shapes.push(None),
-        }
+            Some((Some(i), Some(o))) => NetworkShape { inputs: i as usize, outputs: o as usize },
+            // Widths not recorded with the model: read it again with the engine's reader.
+            Some(_) => {
+                let bytes = store.get_model(hash).await?.ok_or_else(|| ApiError::internal("stored model vanished"))?;
+                model_check::inspect_model(&bytes)
+                    .map_err(|e| ApiError::unprocessable("invalid_model", format!("stored model {hash}: {e}")).field(field))?
+            }
+        };
+        model_errors.extend(spec.check_network(i, shape));
     }
-    if shapes.iter().all(|s| s.is_some()) {
-        let known: Vec<NetworkShape> = shapes.iter().flatten().copied().collect();
-        spec.check_networks(&known).map_err(ApiError::invalid_spec)?;
+    if !model_errors.is_empty() {
+        return Err(ApiError::invalid_spec(model_errors));
     }
     if spec.max_depth > max_depth_limit {
         return Err(ApiError::unprocessable(
@@ -211,7 +218,7 @@ pub fn inspect_upload(bytes: &[u8]) -> ApiResult<NetworkShape> {
 
 fn campaign_json(r: &sqlx::sqlite::SqliteRow, counts: &HashMap<String, (i64, i64)>) -> ApiResult<Value> {
     let cells: serde_json::Map<String, Value> =
-        ALL_STATUSES.iter().map(|s| (s.to_string(), json!(counts.get(*s).map(|c| c.0).unwrap_or(0)))).collect();
+        ALL_STATUSES.iter().map(|s| (store::shown(s).to_string(), json!(counts.get(*s).map(|c| c.0).unwrap_or(0)))).collect();
     Ok(json!({
         "id": r.try_get::<String, _>("id")?,
         "name": r.try_get::<String, _>("name")?,
@@ -340,7 +347,7 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
             exact: format!("{v}/2^{d}"),
             reduced: refine::reduced_fraction(v, d),
         };
-        statuses.insert(s.to_string(), serde_json::to_value(sc).map_err(ApiError::internal)?);
+        statuses.insert(store::shown(s).to_string(), serde_json::to_value(sc).map_err(ApiError::internal)?);
     }
     let vol = |s: &str| counts.get(s).map(|c| c.1).unwrap_or(0);
     let open = vol("pending") + vol("leased");
@@ -374,6 +381,8 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
         "fraction_per_second": volume_per_second,
         "estimated_seconds_remaining": eta,
         "estimate_note": "time left = open volume / resolved volume per second since the first result; deeper cells resolve less volume each, so this is a rough estimate",
+        "counterexample_note": COUNTEREXAMPLE_NOTE,
+        "caution": CAUTION,
     }))
 }
 
@@ -388,12 +397,12 @@ pub async fn cells(
     after: i64,
 ) -> ApiResult<Value> {
     let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
-    if let Some(s) = status {
-        if !ALL_STATUSES.contains(&s) {
-            return Err(ApiError::bad_request(format!("unknown status '{s}' (one of {})", ALL_STATUSES.join(", ")))
-                .field("status"));
-        }
-    }
+    let status = match status {
+        None => None,
+        Some(s) => Some(store::stored(s).ok_or_else(|| {
+            ApiError::bad_request(format!("unknown status '{s}' (one of {})", SHOWN_STATUSES.join(", "))).field("status")
+        })?),
+    };
     let rows = sqlx::query(
         "SELECT c.rowid, c.id, c.parent_id, c.depth, c.box, c.status, c.split_dim, c.attempts, c.last_error,
                 c.lease_expires_at, r.verdict_json
@@ -422,7 +431,7 @@ pub async fn cells(
             "parent_id": r.try_get::<Option<String>, _>(2)?,
             "depth": r.try_get::<i64, _>(3)?,
             "box": info.full_box(&cell),
-            "status": r.try_get::<String, _>(5)?,
+            "status": store::shown(&r.try_get::<String, _>(5)?),
             "split_state": split_dim.and_then(|d| info.split.get(d as usize)).map(|&k| info.states[k].clone()),
             "attempts": r.try_get::<i64, _>(7)?,
             "last_error": r.try_get::<Option<String>, _>(8)?,
@@ -459,7 +468,7 @@ pub async fn counterexamples(store: &Store, id: &str, limit: i64, after: i64) ->
             "cell_id": r.try_get::<String, _>(2)?,
             "depth": r.try_get::<i64, _>(6)?,
             "box": info.full_box(&cell),
-            "cell_status": r.try_get::<String, _>(8)?,
+            "cell_status": store::shown(&r.try_get::<String, _>(8)?),
             "reason": v.get("reason").cloned().unwrap_or(Value::Null),
             "counterexample": v.get("counterexample").cloned().unwrap_or(Value::Null),
             "worker": r.try_get::<String, _>(4)?,
@@ -581,7 +590,7 @@ pub fn report_markdown(r: &Value) -> String {
     let cov = &r["coverage"];
     let _ = writeln!(s, "## Coverage of the envelope (over the split states)\n");
     let _ = writeln!(s, "| Status | Cells | Fraction | Exact |\n|---|---:|---:|---|");
-    for st in LEAF_STATUSES {
+    for st in SHOWN_LEAF_STATUSES {
         let x = &cov["statuses"][st];
         let _ = writeln!(
             s,
@@ -596,7 +605,8 @@ pub fn report_markdown(r: &Value) -> String {
         "\nInternal (split) cells: {}. Results received: {}.\n",
         cov["split_cells"], cov["results"]
     );
-    let _ = writeln!(s, "A fraction counts a cell at depth d as 2^-d of the envelope: cells are halves of halves.\n");
+    let _ = writeln!(s, "A fraction counts a cell at depth d as 2^-d of the envelope: cells are halves of halves.");
+    let _ = writeln!(s, "Proven safe is a lower bound on the safe volume; {COUNTEREXAMPLE_NOTE}.\n");
     let ch = &r["changes"];
     if ch.is_object() {
         let _ = writeln!(s, "## Changes since campaign `{}`\n", ch["against"].as_str().unwrap_or(""));
@@ -617,8 +627,8 @@ pub fn report_markdown(r: &Value) -> String {
         let sm = &ch["summary"];
         let _ = writeln!(
             s,
-            "\nPreviously safe, now unsafe: {}. No longer proven safe: {}. Newly proven safe: {}.\n",
-            sm["safe_to_unsafe"]["reduced"].as_str().unwrap_or("?"),
+            "\nPreviously safe, now in counterexample cells: {}. No longer proven safe: {}. Newly proven safe: {}.\n",
+            sm["safe_to_counterexample"]["reduced"].as_str().unwrap_or("?"),
             sm["no_longer_safe"]["reduced"].as_str().unwrap_or("?"),
             sm["newly_safe"]["reduced"].as_str().unwrap_or("?")
         );
@@ -818,7 +828,7 @@ pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, 
         "states": info.states,
         "envelope": info.envelope,
         "split_states": split_states,
-        "statuses": ALL_STATUSES,
+        "statuses": SHOWN_STATUSES,
         "columns": "rowid, status index, depth, then lo and hi of each split state",
         "as_of_ms": as_of,
         "rows": out,
@@ -863,11 +873,11 @@ pub async fn recent_results(store: &Store, id: &str, limit: i64) -> ApiResult<Va
 pub const MAX_HISTORY_POINTS: usize = 1000;
 
 /// The decided volume over time: for `points` equal steps from the first to the last
-/// decisive result, the fraction of the envelope that was then proven safe, unsafe
-/// and unresolved. Each decided leaf counts from the time of the result that decided
-/// it, with its exact volume 2^(max_depth − depth); the last point equals the current
-/// coverage. Cells that were decided and later split (unsafe with `refine_unsafe`)
-/// count only through their children.
+/// decisive result, the fraction of the envelope that was then proven safe, in
+/// counterexample cells and unresolved. Each decided leaf counts from the time of the
+/// result that decided it, with its exact volume 2^(max_depth − depth); the last point
+/// equals the current coverage. Cells that were decided and later split (cells with a
+/// counterexample, cut further under `refine_unsafe`) count only through their children.
 pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value> {
     let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
     let rows = sqlx::query(
@@ -897,7 +907,7 @@ pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value>
                 acc[events[i].1] += events[i].2;
                 i += 1;
             }
-            out.push(json!({"t_ms": t, "safe": acc[0] as f64 / total, "unsafe": acc[1] as f64 / total,
+            out.push(json!({"t_ms": t, "safe": acc[0] as f64 / total, "counterexample": acc[1] as f64 / total,
                             "unresolved": acc[2] as f64 / total}));
             if first == last {
                 break;

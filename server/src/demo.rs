@@ -11,6 +11,7 @@ use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
+use tessera_worker::caution::CAUTION;
 
 /// The demo scenarios, embedded: (folder, spec, [(file name, bytes)]).
 const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[
@@ -20,14 +21,13 @@ const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[
         &[("lander.onnx", include_bytes!("../../demo/lander/lander.onnx"))],
     ),
     (
-        "rover",
-        include_str!("../../demo/rover/spec.json"),
+        "aisle",
+        include_str!("../../demo/aisle/spec.json"),
         &[
-            ("net_hard_left.onnx", include_bytes!("../../demo/rover/net_hard_left.onnx")),
-            ("net_left.onnx", include_bytes!("../../demo/rover/net_left.onnx")),
-            ("net_straight.onnx", include_bytes!("../../demo/rover/net_straight.onnx")),
-            ("net_right.onnx", include_bytes!("../../demo/rover/net_right.onnx")),
-            ("net_hard_right.onnx", include_bytes!("../../demo/rover/net_hard_right.onnx")),
+            ("net_cruise.onnx", include_bytes!("../../demo/aisle/net_cruise.onnx")),
+            ("net_creep.onnx", include_bytes!("../../demo/aisle/net_creep.onnx")),
+            ("net_veer_port.onnx", include_bytes!("../../demo/aisle/net_veer_port.onnx")),
+            ("net_veer_starboard.onnx", include_bytes!("../../demo/aisle/net_veer_starboard.onnx")),
         ],
     ),
 ];
@@ -53,7 +53,7 @@ pub struct DemoOptions {
     #[arg(long, value_delimiter = ',')]
     pub only: Vec<String>,
     /// End with status 0 once every campaign is done, after one line per campaign
-    /// `safe=… unsafe=… unresolved=…`.
+    /// `safe=… counterexample=… unresolved=…` and the caution.
     #[arg(long)]
     pub exit_when_done: bool,
 }
@@ -106,8 +106,10 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         }
         let depth = spec["refinement"]["max_depth"].as_u64().unwrap_or(8).min(opts.max_depth as u64);
         spec["refinement"]["max_depth"] = depth.into();
-        // Map the unsafe region instead of stopping at the first counterexample of a
-        // large cell: a coverage map is what the demo is for.
+        // Cells with counterexamples are refined down to max depth: the default, which
+        // the embedded specs keep; set here as well so that a spec edited to turn it off
+        // still gets a coverage map, since otherwise one counterexample in a large cell
+        // ends the search for the safe volume inside it.
         spec["refinement"]["refine_unsafe"] = true.into();
         demo_engine_knobs(&mut spec);
         let body = serde_json::to_vec(&spec)?;
@@ -141,9 +143,9 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
             let state = cov["state"].as_str().unwrap_or("?");
             all_done &= state != "running" && state != "paused";
             line.push_str(&format!(
-                "  {name}: safe {:.1}% unsafe {:.1}% unresolved {:.1}% open {:.1}%",
+                "  {name}: safe {:.1}% counterexample {:.1}% unresolved {:.1}% open {:.1}%",
                 pct(&cov, "safe"),
-                pct(&cov, "unsafe"),
+                pct(&cov, "counterexample"),
                 pct(&cov, "unresolved") + pct(&cov, "failed"),
                 pct(&cov, "pending") + pct(&cov, "leased")
             ));
@@ -167,37 +169,39 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     }
 
     println!();
-    println!("{:<10} {:>9} {:>9} {:>11} {:>8} {:>7}", "campaign", "safe", "unsafe", "unresolved", "failed", "cells");
+    println!("{:<10} {:>9} {:>15} {:>11} {:>8} {:>7}", "campaign", "safe", "counterexample", "unresolved", "failed", "cells");
     let mut finals = Vec::new();
     for (name, id) in &ids {
         let cov = campaigns::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         println!(
-            "{:<10} {:>8.2}% {:>8.2}% {:>10.2}% {:>7.2}% {:>7}",
+            "{:<10} {:>8.2}% {:>14.2}% {:>10.2}% {:>7.2}% {:>7}",
             name,
             pct(&cov, "safe"),
-            pct(&cov, "unsafe"),
+            pct(&cov, "counterexample"),
             pct(&cov, "unresolved"),
             pct(&cov, "failed"),
             cov["results"].as_i64().unwrap_or(0)
         );
         finals.push(format!(
-            "{name}: safe={} unsafe={} unresolved={}",
+            "{name}: safe={} counterexample={} unresolved={}",
             exact(&cov, "safe"),
-            exact(&cov, "unsafe"),
+            exact(&cov, "counterexample"),
             exact_sum(&cov, &["unresolved", "failed"])
         ));
     }
     println!("dashboard: {url}/dashboard (log in with the token in {})", opts.dir.join("admin.token").display());
     println!("reports: {url}/api/v1/campaigns/<id>/report.md");
-    println!("These results are engineering evidence under the demo's stated model assumptions, not a certification.");
+    println!("{}.", campaigns::COUNTEREXAMPLE_NOTE);
     if opts.exit_when_done {
         stop_workers(&mut workers);
         server.stop().await?;
         for f in finals {
             println!("{f}");
         }
+        println!("{CAUTION}");
         return Ok(());
     }
+    println!("{CAUTION}");
     println!("serving at {url}; Ctrl-C to stop");
     tokio::signal::ctrl_c().await?;
     stop_workers(&mut workers);

@@ -13,7 +13,7 @@ use crate::campaigns::SeedCell;
 use crate::diff::{self, TreeCell};
 use crate::error::{ApiError, ApiResult};
 use crate::refine;
-use crate::store::{CampaignInfo, Store, ALL_STATUSES, LEAF_STATUSES};
+use crate::store::{self, CampaignInfo, Store, ALL_STATUSES, LEAF_STATUSES, SHOWN_STATUSES};
 use axum::http::StatusCode;
 use serde_json::{json, Value};
 use sqlx::Row;
@@ -213,8 +213,8 @@ pub async fn changes(store: &Store, id: &str, against: Option<&str>, rows: usize
         for to in LEAF_STATUSES {
             if let Some(&(n, units)) = d.transitions.get(&(from.to_string(), to.to_string())) {
                 let mut a = amount(units, depth, n);
-                a["from"] = json!(from);
-                a["to"] = json!(to);
+                a["from"] = json!(store::shown(from));
+                a["to"] = json!(store::shown(to));
                 transitions.push(a);
             }
         }
@@ -250,16 +250,16 @@ pub async fn changes(store: &Store, id: &str, against: Option<&str>, rows: usize
         "max_depth": depth,
         "transitions": transitions,
         "summary": {
-            "safe_to_unsafe": named(&|f, t| f == "safe" && t == "unsafe"),
+            "safe_to_counterexample": named(&|f, t| f == "safe" && t == "unsafe"),
             "safe_to_unresolved": named(&|f, t| f == "safe" && t == "unresolved"),
             "unresolved_to_safe": named(&|f, t| f == "unresolved" && t == "safe"),
-            "unsafe_to_safe": named(&|f, t| f == "unsafe" && t == "safe"),
+            "counterexample_to_safe": named(&|f, t| f == "unsafe" && t == "safe"),
             "still_safe": named(&|f, t| f == "safe" && t == "safe"),
             "no_longer_safe": named(&|f, t| f == "safe" && t != "safe"),
             "newly_safe": named(&|f, t| f != "safe" && t == "safe"),
         },
-        "note": "a volume counts a cell at depth d as 2^-d of the envelope; 'unsafe' volume is that of cells holding a re-checked counterexample, not of the unsafe initial states alone",
-        "statuses": ALL_STATUSES,
+        "note": format!("a volume counts a cell at depth d as 2^-d of the envelope; {}", crate::campaigns::COUNTEREXAMPLE_NOTE),
+        "statuses": SHOWN_STATUSES,
         "split_states": split_states,
         "envelope": info.split_envelope,
         "columns": "from status index, to status index, exponent e (the piece is 2^-e of the envelope), then lo and hi of each split state",

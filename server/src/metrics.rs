@@ -87,7 +87,8 @@ impl Metrics {
         let mut fr = String::new();
         let _ = writeln!(fr, "# HELP tessera_volume_fraction Fraction of the envelope by campaign and leaf status.\n# TYPE tessera_volume_fraction gauge");
         for r in rows {
-            let (c, st): (String, String) = (r.try_get(0)?, r.try_get(1)?);
+            let (c, stored): (String, String) = (r.try_get(0)?, r.try_get(1)?);
+            let st = crate::store::shown(&stored);
             let (n, v, d): (i64, i64, i64) = (r.try_get(2)?, r.try_get(3)?, r.try_get(4)?);
             let _ = writeln!(s, "tessera_cells{{campaign=\"{c}\",status=\"{st}\"}} {n}");
             if st != "split" {

@@ -51,7 +51,7 @@ pub fn document(routes: &[Route]) -> Value {
         "info": {
             "title": "Tessera campaign server",
             "version": env!("CARGO_PKG_VERSION"),
-            "description": "Campaigns, cells, leases and exact coverage accounting. Results are engineering evidence under the stated model assumptions, not a certification; they defer to the applicable safety standards and the responsible certification authority."
+            "description": format!("Campaigns, cells, leases and exact coverage accounting. {}", tessera_worker::caution::CAUTION)
         },
         "security": [{"bearer": []}],
         "paths": paths,

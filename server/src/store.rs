@@ -15,9 +15,37 @@ use std::path::Path;
 use std::sync::{Arc, RwLock};
 use std::time::Duration;
 
-/// Cell statuses of leaves (counted in volume) and of internal nodes.
+/// Cell statuses as stored (`cells.status`, `campaign_counters.status`): of leaves
+/// (counted in volume) and of internal nodes.
 pub const LEAF_STATUSES: [&str; 6] = ["pending", "leased", "safe", "unsafe", "unresolved", "failed"];
 pub const ALL_STATUSES: [&str; 7] = ["pending", "leased", "safe", "unsafe", "unresolved", "failed", "split"];
+
+/// The same statuses as the API, reports, metrics and dashboard name them, in the same
+/// order (so status indices agree): a leaf stored as 'unsafe' is shown as
+/// `counterexample`. Such a leaf holds a re-checked counterexample somewhere in it; its
+/// volume is that of the whole cell, an upper bound on the unsafe initial states in it
+/// and not a measure of them, so it is not called "unsafe volume".
+///
+/// Why mapped here rather than migrated: the stored value sits under a CHECK constraint
+/// of the `cells` table, which SQLite changes only by copying the whole table (millions
+/// of rows after a night), and a migrated file could no longer be opened by the
+/// previous server version. Every status that leaves the server goes through [`shown`]
+/// and every status that comes in through [`stored`].
+pub const SHOWN_LEAF_STATUSES: [&str; 6] = ["pending", "leased", "safe", "counterexample", "unresolved", "failed"];
+pub const SHOWN_STATUSES: [&str; 7] = ["pending", "leased", "safe", "counterexample", "unresolved", "failed", "split"];
+
+/// The name a stored status goes by outside the server (see [`SHOWN_STATUSES`]).
+pub fn shown(stored: &str) -> &str {
+    match ALL_STATUSES.iter().position(|s| *s == stored) {
+        Some(i) => SHOWN_STATUSES[i],
+        None => stored,
+    }
+}
+
+/// The stored status of a name given from outside; `None` when it names no status.
+pub fn stored(shown: &str) -> Option<&'static str> {
+    SHOWN_STATUSES.iter().position(|s| *s == shown).map(|i| ALL_STATUSES[i])
+}
 
 /// Milliseconds since the Unix epoch.
 pub fn now_ms() -> i64 {
@@ -352,5 +380,25 @@ impl Deltas {
             }
         }
         Ok(done)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn shown_and_stored_statuses_correspond_one_to_one() {
+        for (i, s) in ALL_STATUSES.iter().enumerate() {
+            assert_eq!(shown(s), SHOWN_STATUSES[i]);
+            assert_eq!(stored(SHOWN_STATUSES[i]), Some(*s));
+        }
+        for (i, s) in LEAF_STATUSES.iter().enumerate() {
+            assert_eq!(shown(s), SHOWN_LEAF_STATUSES[i]);
+        }
+        assert_eq!(shown("unsafe"), "counterexample");
+        // The stored name is not accepted from outside.
+        assert_eq!(stored("unsafe"), None);
+        assert_eq!(stored("bogus"), None);
     }
 }

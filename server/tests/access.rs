@@ -1,14 +1,48 @@
 //! Access beyond the role × route status matrix (`api_surface.rs`): a refused call
-//! changes nothing, tokens are stored only as their SHA-256, and near misses of a
-//! secret — including the stored hash itself, as someone holding a copy of the
-//! database would try — are unknown tokens. There are no tenants (API.md): every
-//! worker token may read every campaign's spec and models, by design.
+//! changes nothing, tokens are stored only as their SHA-256 (FIPS 180-4), and near
+//! misses of a secret — including the stored hash itself, as someone holding a copy
+//! of the database would try — are unknown tokens. There are no tenants (API.md):
+//! every worker token may read every campaign's spec and models, by design.
+//!
+//! Hashes are computed here by Python's `hashlib` (a reference outside this project and
+//! its `sha2` crate), whose SHA-256 is first checked against the FIPS 180-4 example
+//! "abc" (NIST's published example values). The test fails, never skips, without python3.
 
 mod common;
 use common::*;
 use serde_json::json;
-use sha2::{Digest, Sha256};
+use std::io::Write;
+use std::process::{Command, Stdio};
 use tessera_server::auth::Role;
+
+/// SHA-256 of each input in lowercase hex, by Python's hashlib.
+fn python_sha256(inputs: &[&[u8]]) -> Vec<String> {
+    // Inputs travel as hex lines, so any bytes are fine.
+    let script = "import hashlib, sys\nfor line in sys.stdin:\n    print(hashlib.sha256(bytes.fromhex(line.strip())).hexdigest())\n";
+    let mut child = Command::new("python3")
+        .args(["-c", script])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("python3 must be installed: it is the reference for SHA-256 here");
+    let mut stdin = child.stdin.take().unwrap();
+    for i in inputs {
+        writeln!(stdin, "{}", hex::encode(i)).unwrap();
+    }
+    drop(stdin);
+    let out = child.wait_with_output().unwrap();
+    assert!(out.status.success(), "python3 hashlib failed: {}", String::from_utf8_lossy(&out.stderr));
+    let lines: Vec<String> = String::from_utf8(out.stdout).unwrap().lines().map(str::to_string).collect();
+    assert_eq!(lines.len(), inputs.len());
+    lines
+}
+
+#[test]
+fn the_reference_sha256_matches_the_published_example() {
+    // SHA-256("abc"), the one-block example of FIPS 180-4 in NIST's published example values.
+    assert_eq!(python_sha256(&[b"abc"]), ["ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"]);
+}
 
 #[tokio::test]
 async fn refused_calls_change_nothing() {
@@ -28,7 +62,7 @@ async fn refused_calls_change_nothing() {
     assert_eq!(r.status, 403, "{}", r.text());
     let campaigns = ts.client.get("/api/v1/campaigns", ts.admin()).await.json();
     assert_eq!(campaigns["campaigns"].as_array().unwrap().len(), 0, "{campaigns}");
-    let sha = hex::encode(Sha256::digest(&other));
+    let sha = python_sha256(&[&other]).remove(0);
     assert_eq!(ts.client.get(&format!("/api/v1/models/{sha}"), ts.admin()).await.status, 404);
     let n: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM tokens").fetch_one(&ts.server.state.store.pool).await.unwrap();
     assert_eq!(n, 4, "one token per role, none minted by the worker");
@@ -61,11 +95,12 @@ async fn tokens_are_stored_hashed_and_near_misses_are_unknown() {
     let dir = tempfile::tempdir().unwrap();
     let ts = start(config(dir.path())).await;
     let pool = &ts.server.state.store.pool;
-    for role in Role::ALL {
+    let secrets: Vec<&[u8]> = Role::ALL.iter().map(|r| ts.token(*r).as_bytes()).collect();
+    let hashes = python_sha256(&secrets);
+    for (role, want) in Role::ALL.into_iter().zip(hashes) {
         let secret = ts.token(role);
-        // The row holds SHA-256(secret) in hex (FIPS 180-4, computed here by the sha2
-        // crate, whose "abc" vector the unit tests check) and never the secret.
-        let want = hex::encode(Sha256::digest(secret.as_bytes()));
+        // The row holds SHA-256(secret) in hex (FIPS 180-4, computed by hashlib) and
+        // never the secret.
         let stored: String = sqlx::query_scalar("SELECT token_hash FROM tokens WHERE role = ?")
             .bind(role.as_str())
             .fetch_one(pool)
@@ -91,7 +126,7 @@ async fn tokens_are_stored_hashed_and_near_misses_are_unknown() {
         format!("{admin}0"),
         admin.to_uppercase(),
         // The stored hash is not a credential: a copy of the database grants nothing.
-        hex::encode(Sha256::digest(admin.as_bytes())),
+        python_sha256(&[admin.as_bytes()]).remove(0),
     ];
     for t in &near_misses {
         let r = ts.client.get("/api/v1/whoami", t).await;

@@ -3,9 +3,10 @@
 //!
 //! Reference for the expected fractions: a hand computation (below) of the bisection
 //! of h ∈ [0, 1] to depth 4 under the scripted rule "safe if hi < 0.5, unsafe if
-//! lo > 0.9, else inconclusive":
+//! lo > 0.9, else inconclusive", with cells holding a counterexample kept as leaves
+//! (`refine_unsafe` false):
 //!   safe       = [0, 1/4] + [1/4, 3/8] + [3/8, 7/16]            = 7/16
-//!   unsafe     = [15/16, 1]                                     = 1/16
+//!   counterexample = [15/16, 1]                                 = 1/16
 //!   unresolved = [7/16, 1/2] + six depth-4 cells of [1/2, 7/8]
 //!                + [7/8, 15/16]                                 = 8/16 = 1/2
 //! (the depth-4 cells are at max_depth, where inconclusive becomes unresolved).
@@ -18,19 +19,23 @@ use tessera_server::auth::Role;
 fn assert_expected_fractions(cov: &Value) {
     let st = &cov["statuses"];
     assert_eq!(st["safe"]["volume"], 7, "{cov}");
-    assert_eq!(st["unsafe"]["volume"], 1, "{cov}");
+    assert_eq!(st["counterexample"]["volume"], 1, "{cov}");
     assert_eq!(st["unresolved"]["volume"], 8, "{cov}");
     assert_eq!(st["pending"]["volume"], 0);
     assert_eq!(st["leased"]["volume"], 0);
     assert_eq!(st["failed"]["volume"], 0);
     assert_eq!(st["safe"]["exact"], "7/2^4");
     assert_eq!(st["safe"]["reduced"], "7/16");
-    assert_eq!(st["unsafe"]["reduced"], "1/16");
+    assert_eq!(st["counterexample"]["reduced"], "1/16");
     assert_eq!(st["unresolved"]["reduced"], "1/2");
     assert_eq!(st["safe"]["fraction"], 0.4375);
-    // Leaves: safe 3, unsafe 1, unresolved 1 + 6 + 1 = 8; internal nodes: 11.
+    // Leaves: safe 3, counterexample 1, unresolved 1 + 6 + 1 = 8; internal nodes: 11.
     assert_eq!(st["safe"]["cells"], 3);
-    assert_eq!(st["unsafe"]["cells"], 1);
+    assert_eq!(st["counterexample"]["cells"], 1);
+    // The stored name of the status does not leak.
+    assert!(st.get("unsafe").is_none(), "{cov}");
+    assert!(cov["counterexample_note"].as_str().unwrap().contains("upper bound"), "{cov}");
+    assert_eq!(cov["caution"], tessera_worker::caution::CAUTION);
     assert_eq!(st["unresolved"]["cells"], 8);
     assert_eq!(cov["split_cells"], 11);
     assert_eq!(cov["leaf_volume_matches_total"], true);
@@ -114,6 +119,18 @@ async fn scripted_campaign_ends_with_exact_fractions() {
     let cex = r.json()["counterexamples"].as_array().unwrap().clone();
     assert_eq!(cex.len(), 1);
     assert_eq!(cex[0]["box"]["h"], json!([0.9375, 1.0]));
+    assert_eq!(cex[0]["cell_status"], "counterexample");
+    let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?status=counterexample"), ts.token(Role::Viewer)).await;
+    let cells = r.json()["cells"].as_array().unwrap().clone();
+    assert_eq!(cells.len(), 1, "{}", r.text());
+    assert_eq!(cells[0]["status"], "counterexample");
+    assert_eq!(cells[0]["result"]["verdict"], "unsafe");
+    // The name kept in the database is not one of the API's.
+    let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?status=unsafe"), ts.token(Role::Viewer)).await;
+    assert_eq!((r.status, r.json()["field"].clone()), (400, json!("status")), "{}", r.text());
+    assert!(r.json()["detail"].as_str().unwrap().contains("counterexample"), "{}", r.text());
+    let r = ts.client.get(&format!("/api/v1/campaigns/{id}"), ts.token(Role::Viewer)).await;
+    assert_eq!(r.json()["cells"]["counterexample"], 1, "{}", r.text());
     assert_eq!(cex[0]["counterexample"]["initial_state"]["h"], 0.9375);
 
     let r = ts.client.get(&format!("/api/v1/campaigns/{id}/report"), ts.token(Role::Viewer)).await;
@@ -121,20 +138,27 @@ async fn scripted_campaign_ends_with_exact_fractions() {
     assert_eq!(rep["spec_hash"], c["spec_hash"]);
     assert_eq!(rep["model_sha256"], json!([model]));
     assert_eq!(rep["engine_versions"], json!(["scripted-1"]));
-    assert!(rep["caution"].as_str().unwrap().contains("not a certification"));
+    // The caution in full, float32 point included, from the one place it is written.
+    assert_eq!(rep["caution"], tessera_worker::caution::CAUTION);
+    assert!(rep["caution"].as_str().unwrap().contains("float32"));
     assert_eq!(rep["coverage"]["statuses"]["safe"]["reduced"], "7/16");
+    assert_eq!(rep["coverage"]["statuses"]["counterexample"]["reduced"], "1/16");
     let r = ts.client.get(&format!("/api/v1/campaigns/{id}/report.md"), ts.token(Role::Viewer)).await;
     assert!(r.content_type.starts_with("text/markdown"));
     let md = r.text();
-    for needle in ["not a certification", "certification authority", c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1"] {
+    let caution = tessera_worker::caution::CAUTION;
+    for needle in [caution, c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1", "| counterexample | 1 |", "upper bound"] {
         assert!(md.contains(needle), "report.md lacks {needle}:\n{md}");
     }
+    assert!(!md.contains("| unsafe |"), "{md}");
 
     // Metrics reflect the run.
     let r = ts.client.get("/metrics", ts.token(Role::Viewer)).await;
     let m = r.text();
     assert!(m.contains("tessera_results_accepted_total 23"), "{m}");
     assert!(m.contains(&format!("tessera_volume_fraction{{campaign=\"{id}\",status=\"safe\"}} 0.4375")), "{m}");
+    assert!(m.contains(&format!("tessera_volume_fraction{{campaign=\"{id}\",status=\"counterexample\"}} 0.0625")), "{m}");
+    assert!(!m.contains("status=\"unsafe\""), "{m}");
     ts.server.stop().await.unwrap();
 }
 
@@ -178,29 +202,67 @@ async fn hint_picks_the_cut_and_fallback_is_widest_normalized() {
 }
 
 #[tokio::test]
-async fn refine_unsafe_keeps_cutting_falsified_cells() {
+async fn cells_with_counterexamples_are_cut_to_max_depth_by_default() {
     let dir = tempfile::tempdir().unwrap();
     let ts = start(config(dir.path())).await;
     let model = upload_model(&ts, "c").await;
-    let mut s = spec(&model, 2);
-    s["refinement"]["refine_unsafe"] = json!(true);
-    let id = create_campaign(&ts, &s, "").await;
-    // Every answer is unsafe: with refine_unsafe the tree still grows to max_depth.
-    loop {
-        let cells = lease(&ts, 10).await;
-        if cells.is_empty() {
-            break;
+    // Every answer is unsafe. Without `refine_unsafe` in the spec the tree still grows
+    // to max_depth; with it set to false the root stays the only leaf.
+    for (refine, leaves, splits) in [(None, 4, 3), (Some(false), 1, 0)] {
+        let mut s = spec(&model, 2);
+        match refine {
+            None => drop(s["refinement"].as_object_mut().unwrap().remove("refine_unsafe")),
+            Some(r) => s["refinement"]["refine_unsafe"] = json!(r),
         }
-        let items: Vec<(String, Value)> = cells
-            .iter()
-            .map(|c| (c["lease_id"].as_str().unwrap().to_string(), json!({"verdict": "unsafe", "counterexample": {"t": 0}})))
-            .collect();
-        submit(&ts, &items).await;
+        let id = create_campaign(&ts, &s, "").await;
+        loop {
+            let cells = lease(&ts, 10).await;
+            if cells.is_empty() {
+                break;
+            }
+            let items: Vec<(String, Value)> = cells
+                .iter()
+                .map(|c| (c["lease_id"].as_str().unwrap().to_string(), json!({"verdict": "unsafe", "counterexample": {"t": 0}})))
+                .collect();
+            submit(&ts, &items).await;
+        }
+        let cov = coverage(&ts, &id).await;
+        assert_eq!(cov["statuses"]["counterexample"]["cells"], leaves, "{refine:?}: {cov}");
+        assert_eq!(cov["statuses"]["counterexample"]["reduced"], "1/1");
+        assert_eq!(cov["split_cells"], splits, "{refine:?}: {cov}");
+        assert_eq!(cov["state"], "done");
     }
-    let cov = coverage(&ts, &id).await;
-    assert_eq!(cov["statuses"]["unsafe"]["cells"], 4);
-    assert_eq!(cov["statuses"]["unsafe"]["reduced"], "1/1");
-    assert_eq!(cov["split_cells"], 3);
+    ts.server.stop().await.unwrap();
+}
+
+#[tokio::test]
+async fn submission_runs_the_engine_model_checks_naming_the_network() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = start(config(dir.path())).await;
+    let sub = ts.token(Role::Submitter).to_string();
+    // Three outputs for the spec's two commands (`Spec::check_network`, as the engine).
+    let m = tessera_server::model_check::testing::tiny_model(1, 3, "three outputs");
+    let r = ts.client.post_raw("/api/v1/models", &sub, m).await;
+    assert_eq!(r.status, 201, "{}", r.text());
+    let sha = r.json()["sha256"].as_str().unwrap().to_string();
+    let r = ts.client.post("/api/v1/campaigns", &sub, &spec(&sha, 3)).await;
+    assert_eq!(r.status, 422, "{}", r.text());
+    let v = r.json();
+    assert_eq!(v["error"], "invalid_spec");
+    assert_eq!(v["field"], "controller.networks[0]");
+    assert_eq!(v["errors"][0]["message"], "network has 3 outputs but the spec has 2 commands", "{v}");
+    // A model stored without its widths (the columns allow it) is read again with the
+    // engine's reader rather than let through.
+    let wide = tessera_server::model_check::testing::tiny_model(2, 3, "no widths");
+    let sha = ts.server.state.store.put_model(&wide, None, None).await.unwrap();
+    let r = ts.client.post("/api/v1/campaigns", &sub, &spec(&sha, 3)).await;
+    assert_eq!(r.status, 422, "{}", r.text());
+    let v = r.json();
+    assert_eq!(v["field"], "controller.networks[0]");
+    let messages: Vec<&str> = v["errors"].as_array().unwrap().iter().map(|e| e["message"].as_str().unwrap()).collect();
+    assert_eq!(messages, ["network takes 2 inputs but the spec has 1 observations", "network has 3 outputs but the spec has 2 commands"]);
+    let n: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM campaigns").fetch_one(&ts.server.state.store.pool).await.unwrap();
+    assert_eq!(n, 0, "no campaign was created");
     ts.server.stop().await.unwrap();
 }
 
@@ -517,7 +579,7 @@ async fn concurrent_workers_keep_the_accounting_exact() {
     let cov = coverage(&ts, &id).await;
     assert_eq!(cov["state"], "done", "{cov}");
     assert_eq!(cov["statuses"]["safe"]["exact"], "127/2^8");
-    assert_eq!(cov["statuses"]["unsafe"]["exact"], "25/2^8");
+    assert_eq!(cov["statuses"]["counterexample"]["exact"], "25/2^8");
     assert_eq!(cov["statuses"]["unresolved"]["exact"], "104/2^8");
     assert_eq!(tiling(&ts, &id).await["ok"], true);
 }

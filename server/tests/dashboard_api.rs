@@ -59,7 +59,7 @@ async fn leaves_match_the_counters_and_the_cell_listing() {
         *by_status.entry(s.clone()).or_default() += 1;
     }
     assert!(!by_status.contains_key("split"), "a full read lists leaves only");
-    for s in ["pending", "leased", "safe", "unsafe", "unresolved", "failed"] {
+    for s in ["pending", "leased", "safe", "counterexample", "unresolved", "failed"] {
         assert_eq!(by_status.get(s).copied().unwrap_or(0), summary["cells"][s].as_i64().unwrap(), "{s}");
     }
     assert!(by_status.get("safe").copied().unwrap_or(0) > 0 && by_status.get("pending").copied().unwrap_or(0) > 0, "{by_status:?}");
@@ -150,7 +150,7 @@ async fn dashboard_pages_are_public_and_self_contained() {
         assert!(csp.contains("default-src 'none'") && csp.contains("connect-src 'self'"), "{csp}");
     }
     let page = ts.client.req("GET", "/dashboard", None, None).await.text();
-    assert!(page.contains("not a certification"));
+    assert!(page.contains(tessera_worker::caution::CAUTION), "the dashboard shows the caution in full");
     assert!(page.contains("/dashboard/app.js"));
     // A page never carries data: without a token the API still answers 401.
     let r = ts.client.req("GET", "/api/v1/campaigns", None, None).await;
@@ -178,16 +178,17 @@ async fn history_grows_to_the_current_coverage() {
     assert!(!points.is_empty() && points.len() <= 7, "{points:?}");
     for w in points.windows(2) {
         assert!(w[0]["t_ms"].as_i64() <= w[1]["t_ms"].as_i64());
-        for s in ["safe", "unsafe", "unresolved"] {
+        for s in ["safe", "counterexample", "unresolved"] {
             assert!(w[0][s].as_f64() <= w[1][s].as_f64(), "{s} decreased: {w:?}");
         }
     }
     // The last point is the coverage, read from the exact counters.
     let cov = coverage(&ts, &id).await;
     let last = points.last().unwrap();
-    for s in ["safe", "unsafe", "unresolved"] {
+    for s in ["safe", "counterexample", "unresolved"] {
         assert_eq!(last[s].as_f64().unwrap(), cov["statuses"][s]["fraction"].as_f64().unwrap(), "{s}");
     }
+    assert!(last["counterexample"].as_f64().unwrap() > 0.0, "{last}");
     assert!(last["safe"].as_f64().unwrap() > 0.0);
     assert_eq!(ts.client.get(&format!("/api/v1/campaigns/{id}/history?points=0"), ts.token(Role::Viewer)).await.status, 400);
     ts.server.stop().await.unwrap();

@@ -9,6 +9,8 @@
 //! other leaves are pending again at depth 3: 5 pending cells, 4 internal ones.
 //! Follow-up B1 ("[0, 1/2] is safe as a whole", otherwise A's rule): 5 results, and
 //! the diff is safe→safe 1/2, unresolved→unresolved 3/8, unsafe→unsafe 1/8.
+//! (Cells with a counterexample stay leaves here, `refine_unsafe` false; the API names
+//! their status `counterexample`.)
 //! Follow-up B2 (a degraded controller, rule in `degraded` below; max_depth 4):
 //!   [0, 1/2] unsafe → cut into A's halves: [0, 1/4] unsafe, [1/4, 1/2] safe;
 //!   [1/2, 5/8] and [5/8, 3/4] safe; [3/4, 7/8] inconclusive → two unresolved halves;
@@ -148,7 +150,7 @@ async fn follow_ups_start_from_the_earlier_leaves_and_diff_exactly() {
     let cov = coverage(&ts, &a).await;
     assert_eq!(cov["state"], "done");
     assert_eq!(cov["statuses"]["safe"]["reduced"], "1/2");
-    assert_eq!(cov["statuses"]["unsafe"]["reduced"], "1/8");
+    assert_eq!(cov["statuses"]["counterexample"]["reduced"], "1/8");
     assert_eq!(cov["statuses"]["unresolved"]["reduced"], "3/8");
 
     // Follow-up B1, with a new model: seeded from A, [0, 1/2] re-joined and leased first.
@@ -169,7 +171,7 @@ async fn follow_ups_start_from_the_earlier_leaves_and_diff_exactly() {
     assert_eq!(ch["final"], false);
     assert_eq!(
         transitions(&ch),
-        expect(&[("safe", "pending", "1/2"), ("unsafe", "pending", "1/8"), ("unresolved", "pending", "3/8")])
+        expect(&[("safe", "pending", "1/2"), ("counterexample", "pending", "1/8"), ("unresolved", "pending", "3/8")])
     );
 
     let leased = run(&ts, rule_b1).await;
@@ -181,10 +183,12 @@ async fn follow_ups_start_from_the_earlier_leaves_and_diff_exactly() {
     assert_eq!(ch["against"], a.as_str());
     assert_eq!(
         transitions(&ch),
-        expect(&[("safe", "safe", "1/2"), ("unsafe", "unsafe", "1/8"), ("unresolved", "unresolved", "3/8")])
+        expect(&[("safe", "safe", "1/2"), ("counterexample", "counterexample", "1/8"), ("unresolved", "unresolved", "3/8")])
     );
-    assert_eq!(ch["summary"]["safe_to_unsafe"]["reduced"], "0/1");
-    assert_eq!(ch["summary"]["safe_to_unsafe"]["volume"], 0);
+    assert_eq!(ch["summary"]["safe_to_counterexample"]["reduced"], "0/1");
+    assert_eq!(ch["summary"]["safe_to_counterexample"]["volume"], 0);
+    assert!(ch["summary"].get("safe_to_unsafe").is_none(), "{ch}");
+    assert!(ch["note"].as_str().unwrap().contains("upper bound"), "{ch}");
     assert_eq!(ch["summary"]["still_safe"]["exact"], "4/2^3");
     // A's two safe leaves both lie in B1's one safe cell: two pieces of 2^-2.
     assert_eq!(ch["rows_total"], 6);
@@ -207,17 +211,17 @@ async fn follow_ups_start_from_the_earlier_leaves_and_diff_exactly() {
     assert_eq!(t["ok"], true, "{t}");
     let ch = changes(&ts, &b2, "?rows=100").await;
     let want = expect(&[
-        ("safe", "unsafe", "1/4"),
+        ("safe", "counterexample", "1/4"),
         ("safe", "safe", "1/4"),
         ("unresolved", "safe", "1/4"),
         ("unresolved", "unresolved", "1/8"),
-        ("unsafe", "safe", "1/16"),
-        ("unsafe", "unsafe", "1/16"),
+        ("counterexample", "safe", "1/16"),
+        ("counterexample", "counterexample", "1/16"),
     ]);
     assert_eq!(transitions(&ch), want);
     let sm = &ch["summary"];
-    assert_eq!(sm["safe_to_unsafe"]["reduced"], "1/4");
-    assert_eq!(sm["safe_to_unsafe"]["fraction"], 0.25);
+    assert_eq!(sm["safe_to_counterexample"]["reduced"], "1/4");
+    assert_eq!(sm["safe_to_counterexample"]["fraction"], 0.25);
     assert_eq!(sm["no_longer_safe"]["reduced"], "1/4");
     assert_eq!(sm["newly_safe"]["reduced"], "5/16");
     assert_eq!(sm["unresolved_to_safe"]["reduced"], "1/4");
@@ -244,11 +248,11 @@ async fn follow_ups_start_from_the_earlier_leaves_and_diff_exactly() {
 
     // The report and the reverse diff (against=).
     let rep = ts.client.get(&format!("/api/v1/campaigns/{b2}/report"), ts.token(Role::Viewer)).await.json();
-    assert_eq!(rep["changes"]["summary"]["safe_to_unsafe"]["reduced"], "1/4");
+    assert_eq!(rep["changes"]["summary"]["safe_to_counterexample"]["reduced"], "1/4");
     let md = ts.client.get(&format!("/api/v1/campaigns/{b2}/report.md"), ts.token(Role::Viewer)).await.text();
-    assert!(md.contains("## Changes since campaign") && md.contains("Previously safe, now unsafe: 1/4"), "{md}");
+    assert!(md.contains("## Changes since campaign") && md.contains("Previously safe, now in counterexample cells: 1/4"), "{md}");
     let back = changes(&ts, &a, &format!("?against={b2}")).await;
-    assert_eq!(back["summary"]["unsafe_to_safe"]["reduced"], "1/4");
+    assert_eq!(back["summary"]["counterexample_to_safe"]["reduced"], "1/4");
     assert_eq!(back["follow_up_of"], Value::Null);
     // Campaign A follows up nothing: the diff needs 'against'.
     let r = ts.client.get(&format!("/api/v1/campaigns/{a}/changes"), ts.token(Role::Viewer)).await;

@@ -16,7 +16,7 @@ fn inspect_model_agrees_with_onnxruntime() {
     );
     let report: serde_json::Value = serde_json::from_slice(&out.stdout).expect("JSON report");
     let files = report.as_object().unwrap();
-    assert_eq!(files.len(), 3);
+    assert_eq!(files.len(), 5);
     for (name, want) in files {
         let bytes = std::fs::read(dir.path().join(name)).unwrap();
         let shape = tessera_server::model_check::inspect_model(&bytes).unwrap_or_else(|e| panic!("{name}: {e}"));

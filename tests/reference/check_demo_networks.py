@@ -16,9 +16,10 @@ For every spec demo/*/spec.json and every network it references:
     on at least 90 % of 1000 samples drawn as in training: this ties the committed file
     to the trained network (a garbled export would fall to chance level).
 Per spec, also: the committed spec equals the one demo/train.py generates (no stale
-file), and its observation expressions, evaluated by demo/simulate.py's interpreter of the
-spec language, equal the features the networks were trained on (`observe` in train.py)
-on 1000 sampled states, to 1e-12 relative.
+file), and its observation expressions, evaluated by tests/reference/spec_expressions.py
+(an interpreter of the spec language of its own, not the demo simulator's), equal the
+features the networks were trained on (`observe` in train.py) on 1000 sampled states, to
+1e-12 relative.
 Prints, as JSON on stdout, each spec's network references with the input and output
 counts read from the graph's declared input/output dims, for the Rust side to check with
 `Spec::check_networks`. Exits non-zero, loudly, on any failure or missing package.
@@ -87,8 +88,9 @@ def main():
         fail("usage: check_demo_networks.py REPO_ROOT")
     root = os.path.abspath(sys.argv[1])
     sys.path.insert(0, os.path.join(root, "demo"))
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
     import train  # defines `forward`; trains nothing on import
-    import simulate  # the spec-language interpreter of the demo simulator
+    import spec_expressions  # the reference interpreter of the spec language
 
     rng_feat = np.random.default_rng(11)
 
@@ -107,9 +109,9 @@ def main():
         if spec != cls.spec():
             fail(f"{spec_path} differs from what demo/train.py generates: rerun python3 demo/train.py")
         states = cls.sample_states(rng_feat, SAMPLES)
-        env = {st["name"]: states[:, i] for i, st in enumerate(spec["states"])}
-        feats = np.stack([np.broadcast_to(simulate.compile_expr(o["expr"], list(env))(env), (SAMPLES,))
-                          for o in spec["controller"]["observations"]], axis=1)
+        names = [st["name"] for st in spec["states"]]
+        exprs = [spec_expressions.expression(o["expr"], names) for o in spec["controller"]["observations"]]
+        feats = np.array([[e(dict(zip(names, map(float, row)))) for e in exprs] for row in states])
         want = cls.observe(states)
         if not np.allclose(feats, want, rtol=1e-12, atol=1e-12):
             fail(f"{spec_path}: the spec's observations differ from the training features "

@@ -4,7 +4,8 @@
 The stand-in speaks the wire format named at the top of gate.py (it imports those names,
 so a renamed field is renamed here too): it stores uploaded models under their SHA-256
 (hashlib, FIPS 180-4), records the campaign spec it is given, answers the coverage poll
-with a running state twice and then a finished state with a chosen safe fraction.
+with a running state twice and then a finished state with a chosen safe fraction and a
+caution text.
 
 Checks (each exits non-zero with a message when it fails):
   1. a pass: safe 0.75 >= --min-safe 0.7 -> exit 0; the campaign spec received has every
@@ -13,9 +14,11 @@ Checks (each exits non-zero with a message when it fails):
   3. a wrong bearer token (HTTP 401) -> exit 2;
   4. a server that reports a different hash for an upload -> exit 2;
   5. a campaign that ends cancelled -> exit 1;
-  6. --follow-up c5 --no-new-unsafe with no safe volume turned unsafe -> exit 0, and the
-     campaign was created with the follow_up query parameter;
-  7. the same with 1/8 of the envelope turned from safe to unsafe -> exit 1.
+  6. --follow-up c5 --no-new-counterexample with no safe volume now in counterexample
+     cells -> exit 0, and the campaign was created with the follow_up query parameter;
+  7. the same (under the flag's earlier name, --no-new-unsafe) with 1/8 of the envelope
+     turned from safe to counterexample -> exit 1;
+  8. the verdict is printed with the server's caution, verbatim.
 
 Usage: python3 tests/reference/check_gate.py REPO_ROOT
 """
@@ -40,8 +43,9 @@ sys.path.insert(0, os.path.join(root, "deploy", "pipeline"))
 import gate as G  # noqa: E402  (wire-format names)
 
 TOKEN = "test-token"
+CAUTION = "stand-in caution: evidence under the stated model assumptions, not a certification"
 STATE = {"safe": 0.75, "final": "done", "lie_about_hash": False, "models": {}, "campaigns": [], "polls": 0,
-         "queries": [], "safe_to_unsafe": "0/1"}
+         "queries": [], "safe_to_counterexample": "0/1"}
 
 
 class Handler(http.server.BaseHTTPRequestHandler):
@@ -83,20 +87,22 @@ class Handler(http.server.BaseHTTPRequestHandler):
             return
         cid = f"c{len(STATE['campaigns'])}"
         if self.path == G.CHANGES_PATH.format(id=cid):
-            return self.reply(200, {G.SUMMARY_FIELD: {G.SAFE_TO_UNSAFE_FIELD: {G.EXACT_FIELD: STATE["safe_to_unsafe"]}}})
+            return self.reply(200, {G.SUMMARY_FIELD: {G.SAFE_TO_COUNTEREXAMPLE_FIELD: {G.EXACT_FIELD: STATE["safe_to_counterexample"]}}})
         if self.path != G.COVERAGE_PATH.format(id=cid):
             return self.reply(404, {"error": "no route"})
         STATE["polls"] += 1
         if STATE["polls"] < 3:
-            return self.reply(200, {G.STATE_FIELD: "running", G.FRACTIONS_FIELD: {G.SAFE_FIELD: {G.FRACTION_FIELD: 0.1}}})
-        fr = {G.SAFE_FIELD: STATE["safe"], "unsafe": 0.05, "unresolved": 1.0 - STATE["safe"] - 0.05}
-        self.reply(200, {G.STATE_FIELD: STATE["final"], G.FRACTIONS_FIELD: {k: {G.FRACTION_FIELD: v} for k, v in fr.items()}})
+            return self.reply(200, {G.STATE_FIELD: "running", G.FRACTIONS_FIELD: {G.SAFE_FIELD: {G.FRACTION_FIELD: 0.1}},
+                                    G.CAUTION_FIELD: CAUTION})
+        fr = {G.SAFE_FIELD: STATE["safe"], "counterexample": 0.05, "unresolved": 1.0 - STATE["safe"] - 0.05}
+        self.reply(200, {G.STATE_FIELD: STATE["final"], G.FRACTIONS_FIELD: {k: {G.FRACTION_FIELD: v} for k, v in fr.items()},
+                         G.CAUTION_FIELD: CAUTION})
 
 
 server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
 threading.Thread(target=server.serve_forever, daemon=True).start()
 url = f"http://127.0.0.1:{server.server_address[1]}"
-spec_path = os.path.join(root, "demo", "rover", "spec.json")
+spec_path = os.path.join(root, "demo", "aisle", "spec.json")
 
 
 def run(min_safe, token=TOKEN, extra=()):
@@ -110,6 +116,8 @@ def run(min_safe, token=TOKEN, extra=()):
 code, out = run(0.7)
 if code != 0:
     fail(f"expected a pass (exit 0), got {code}:\n{out}")
+if CAUTION + "\n" not in out:
+    fail(f"the verdict was printed without the server's caution:\n{out}")
 with open(spec_path) as f:
     original = json.load(f)
 sent = STATE["campaigns"][-1]
@@ -142,16 +150,18 @@ if code != 1:
     fail(f"expected exit 1 for a failed campaign, got {code}:\n{out}")
 
 STATE["final"] = "done"
-code, out = run(0.1, extra=["--follow-up", "c5", "--no-new-unsafe"])
+code, out = run(0.1, extra=["--follow-up", "c5", "--no-new-counterexample"])
 if code != 0:
-    fail(f"expected a pass with no new unsafe volume, got {code}:\n{out}")
+    fail(f"expected a pass with no new counterexample volume, got {code}:\n{out}")
 if STATE["queries"][-1].get(G.FOLLOW_UP_PARAM) != ["c5"]:
     fail(f"the campaign was not created as a follow-up of c5: {STATE['queries'][-1]}")
 
-STATE["safe_to_unsafe"] = "1/8"
+STATE["safe_to_counterexample"] = "1/8"
 code, out = run(0.1, extra=["--follow-up", "c6", "--no-new-unsafe"])
 if code != 1 or "1/8" not in out:
-    fail(f"expected exit 1 naming 1/8 of new unsafe volume, got {code}:\n{out}")
+    fail(f"expected exit 1 naming 1/8 of new counterexample volume, got {code}:\n{out}")
+if CAUTION + "\n" not in out:
+    fail(f"the failing verdict was printed without the server's caution:\n{out}")
 
 server.shutdown()
-print("check_gate: 7 checks passed")
+print("check_gate: 8 checks passed")

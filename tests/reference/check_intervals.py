@@ -67,6 +67,7 @@ def exact(f, args):
 def main(path):
     checked = {}
     defined = {}
+    compared = {}
     failures = 0
     with open(path) as fh:
         for line in fh:
@@ -84,12 +85,14 @@ def main(path):
                 v = exact(f, p)
                 if v is None:
                     continue
+                compared[f] = compared.get(f, 0) + 1
                 if not (lo <= v <= hi):
                     failures += 1
                     if failures <= 20:
                         print(f"OUTSIDE: {f}{tuple(p)} = {mpmath.nstr(v, 25)} not in [{r['enc'][0]!r}, {r['enc'][1]!r}] (args {r['args']})")
     for f in sorted(checked):
-        print(f"{f}: {checked[f]} intervals, {defined.get(f, 0)} with a defined enclosure")
+        print(f"{f}: {checked[f]} intervals, {defined.get(f, 0)} with a defined enclosure, "
+              f"{compared.get(f, 0)} exact values compared")
     if failures:
         print(f"{failures} sample values outside their enclosure")
         return 1

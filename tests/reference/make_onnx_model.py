@@ -1,5 +1,6 @@
 """Write small ONNX models with the `onnx` package and report their input and output
-widths as onnxruntime sees them (reference for the server's model sniff).
+widths as onnxruntime sees them (reference for the server's model sniff and for the
+model checks of `tessera-worker validate`).
 
 Usage: python3 make_onnx_model.py OUT_DIR
 Prints one JSON object: {file: {"inputs": n, "outputs": m}, ...}.
@@ -50,6 +51,9 @@ def main():
         "fixed_batch.onnx": (3, 16, 5, 1, False),
         "symbolic_batch.onnx": (2, 8, 4, "N", False),
         "inits_as_inputs.onnx": (4, 8, 3, 1, True),
+        # For the two-tank spec of worker/tests/spec_cli.rs (2 observations, 2 commands).
+        "pump_2_outputs.onnx": (2, 8, 2, 1, False),
+        "pump_3_outputs.onnx": (2, 8, 3, 1, False),
     }.items():
         path = os.path.join(out, name)
         onnx.save(dense_relu(*args), path)

@@ -3,12 +3,14 @@
 //! campaign whose cells were driven to known statuses through the worker API.
 //!
 //! Checks: the coverage map draws as many cells of each status as the test's own
-//! scripted worker produced (and as the server's counters say), the counterexample
-//! trajectories are drawn, hovering shows a cell's box, the token from the URL
-//! fragment goes to sessionStorage and out of the address bar, a click on Pause (the
-//! button's own handler) pauses the campaign as seen through the API, viewers get no
-//! working buttons, a bad token gets the login form, and the list page lists the
-//! campaign. A screenshot is saved under the cargo target tmp dir.
+//! scripted worker produced (and as the server's counters say), with no debug text
+//! under it, the counterexample trajectories are drawn, the time axis of the history
+//! chart is labelled at round values, the footer carries the caution in full,
+//! hovering shows a cell's box, the token from the URL fragment goes to sessionStorage
+//! and out of the address bar, a click on Pause (the button's own handler) pauses the
+//! campaign as seen through the API, viewers get no working buttons, a bad token gets
+//! the login form, and the list page lists the campaign. A screenshot is saved under
+//! the cargo target tmp dir.
 
 use serde_json::{json, Value};
 use std::io::{BufRead, BufReader};
@@ -228,8 +230,15 @@ fn spec(model: &str) -> Value {
         "unsafe": [{"all": ["h >= 2"]}],
         "horizon_periods": 20,
         "envelope": {"h": [0.0, 1.0], "v": [-1.0, 1.0]},
-        "refinement": {"max_depth": MAX_DEPTH, "split": ["h", "v"]}
+        // Cells with a counterexample stay leaves, so the tally below counts them.
+        "refinement": {"max_depth": MAX_DEPTH, "split": ["h", "v"], "refine_unsafe": false}
     })
+}
+
+/// Whether `step` is 1, 2 or 5 times a power of ten.
+fn is_round_step(step: f64) -> bool {
+    let p = 10f64.powf(step.log10().floor());
+    [1.0, 2.0, 5.0, 10.0].iter().any(|m| ((step / p) - m).abs() < 1e-9)
 }
 
 /// What the scripted worker answered, counted by the test itself.
@@ -325,54 +334,84 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     let leaves = 4 + tally.split;
     let pending = leaves - tally.safe - tally.unsafe_ - tally.unresolved - leased;
     let expected = json!({
-        "safe": tally.safe, "unsafe": tally.unsafe_, "unresolved": tally.unresolved,
+        "safe": tally.safe, "counterexample": tally.unsafe_, "unresolved": tally.unresolved,
         "pending": pending, "leased": leased, "failed": 0, "total": leaves,
     });
-    for s in ["safe", "unsafe", "unresolved", "pending", "leased", "failed"] {
+    for s in ["safe", "counterexample", "unresolved", "pending", "leased", "failed"] {
         assert_eq!(cells[s], expected[s], "server counter for {s} against the scripted tally {tally:?}");
     }
-    for s in ["safe", "unsafe", "unresolved", "pending", "leased"] {
+    for s in ["safe", "counterexample", "unresolved", "pending", "leased"] {
         assert!(expected[s].as_i64().unwrap() > 0, "the scenario should show some {s} cells: {expected}");
     }
+    // Spread the results' times over 713 s, so that the history chart's time axis
+    // runs in minutes over a span whose even quarters are not round (2.97 min).
+    rt.block_on(async {
+        let pool = &server.state.store.pool;
+        let (lo, hi, first): (i64, i64, i64) =
+            sqlx::query_as("SELECT MIN(rowid), MAX(rowid), MIN(received_at) FROM results").fetch_one(pool).await.unwrap();
+        sqlx::query("UPDATE results SET received_at = ?1 + (rowid - ?2) * 713000 / ?3")
+            .bind(first)
+            .bind(lo)
+            .bind((hi - lo).max(1))
+            .execute(pool)
+            .await
+            .unwrap();
+    });
 
     // The campaign page, logged in by a token in the URL fragment.
     let page = format!("{}/dashboard/campaigns/{id}", api.base);
     let mut b = Browser::launch(&format!("{page}#token={sub}"));
     let drawn = b.wait_for(
         &format!(
-            "(() => {{ const d = document.getElementById('drawn').textContent; if (!d) return null; \
+            "(() => {{ const d = document.getElementById('map').dataset.drawn; if (!d) return null; \
                const v = JSON.parse(d); return v.counterexamples === {} ? v : null; }})()",
             tally.unsafe_
         ),
         15,
         "the map with every counterexample",
     );
-    for s in ["safe", "unsafe", "unresolved", "pending", "leased", "total"] {
+    for s in ["safe", "counterexample", "unresolved", "pending", "leased", "total"] {
         assert_eq!(drawn[s], expected[s], "cells drawn with status {s}: page drew {drawn}, expected {expected}");
     }
     assert_eq!(drawn["failed"], 0, "{drawn}");
-    let canvas_attr = b.eval("JSON.parse(document.getElementById('map').dataset.drawn)");
-    assert_eq!(canvas_attr, drawn);
+    // The drawing counts are for tests only: no debug line of them on the page.
+    let page_text = b.eval("document.body.innerText").as_str().unwrap().to_string();
+    assert!(!page_text.contains("{\"total\"") && !page_text.contains("\"counterexamples\":"), "debug output on the page: {page_text}");
+    assert_eq!(b.eval("document.getElementById('drawn')"), Value::Null);
     assert_eq!(b.eval("sessionStorage.getItem('tessera.token')"), json!(sub), "token kept in sessionStorage");
     assert_eq!(b.eval("location.hash"), json!(""), "token removed from the address bar");
     assert_eq!(b.eval("localStorage.length"), json!(0));
     assert_eq!(b.eval("document.getElementById('who').textContent"), json!("role: submitter"));
     let footer = b.eval("document.querySelector('footer').textContent.replace(/\\s+/g, ' ').trim()");
-    assert_eq!(
-        footer,
-        json!("Results are engineering evidence under the stated model assumptions, not a certification; they defer to the applicable safety standards and the responsible certification authority.")
-    );
+    assert_eq!(footer, json!(tessera_worker::caution::CAUTION), "the caution in full, from its one source");
     let traj_note = b.eval("document.getElementById('traj-note').textContent");
     assert!(traj_note.as_str().unwrap().starts_with(&format!("{} trajectories", tally.unsafe_)), "{traj_note}");
     let legend = b.eval("document.getElementById('map-legend').textContent");
-    for label in ["proven safe", "unsafe", "unresolved", "pending"] {
+    for label in ["proven safe", "holds a counterexample", "unresolved", "pending"] {
         assert!(legend.as_str().unwrap().contains(label), "legend: {legend}");
     }
+    assert!(!legend.as_str().unwrap().contains("unsafe"), "legend: {legend}");
     // The history chart ends at the coverage.
     let cov = api.get(&format!("/api/v1/campaigns/{id}/coverage"), &viewer);
     let note = b.wait_for("document.getElementById('history-note').textContent || null", 5, "the history chart");
     let safe_pct = format!("{:.2} % proven safe", 100.0 * cov["statuses"]["safe"]["fraction"].as_f64().unwrap());
     assert!(note.as_str().unwrap().starts_with(&format!("Now: {safe_pct}")), "{note} vs {safe_pct}");
+    // Its time axis: 713 s is 11.9 minutes, labelled at round values 0, 5, 10 (a step
+    // of 1, 2 or 5 × 10^k, 3 to 6 labels; common practice for axis ticks).
+    let ticks = b.wait_for(
+        "(() => { const t = document.getElementById('history').dataset.ticks; return t ? JSON.parse(t) : null; })()",
+        5,
+        "the history chart's ticks",
+    );
+    assert_eq!(ticks["unit"], "minutes", "{ticks}");
+    let step = ticks["step"].as_f64().unwrap();
+    assert!(is_round_step(step), "{ticks}");
+    let labels: Vec<&str> = ticks["labels"].as_array().unwrap().iter().map(|l| l.as_str().unwrap()).collect();
+    assert!((3..=6).contains(&labels.len()), "{ticks}");
+    for (k, l) in labels.iter().enumerate() {
+        assert!((l.parse::<f64>().unwrap() - k as f64 * step).abs() < 1e-9, "label {l} is not {k} × {step}: {ticks}");
+    }
+    assert_eq!(labels, ["0", "5", "10"], "{ticks}");
     // Recent results list the newest results.
     let recent = b.eval("document.querySelectorAll('#recent tbody tr').length");
     assert_eq!(recent, json!(15));
@@ -410,7 +449,7 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     // A viewer sees the same map but no working buttons.
     b.navigate(&format!("{page}#token={viewer}"));
     b.wait_for("document.getElementById('who').textContent === 'role: viewer'", 10, "the viewer's role");
-    b.wait_for("document.getElementById('drawn').textContent !== ''", 10, "the viewer's map");
+    b.wait_for("!!document.getElementById('map').dataset.drawn", 10, "the viewer's map");
     b.wait_for("document.getElementById('action-note').textContent.includes('viewer')", 10, "the viewer's note");
     for btn in ["btn-pause", "btn-resume", "btn-cancel"] {
         let usable = b.eval(&format!("(() => {{ const e = document.getElementById('{btn}'); return !e.hidden && !e.disabled; }})()"));
@@ -520,19 +559,19 @@ fn dashboard_draws_the_changes_of_a_follow_up() {
     assert_eq!(ch["final"], true, "{ch}");
     let statuses: Vec<&str> = ch["statuses"].as_array().unwrap().iter().map(|s| s.as_str().unwrap()).collect();
     let mut expected: std::collections::BTreeMap<&str, i64> =
-        ["same", "still-safe", "newly-safe", "lost-safe", "safe-unsafe"].iter().map(|k| (*k, 0)).collect();
+        ["same", "still-safe", "newly-safe", "lost-safe", "safe-counterexample"].iter().map(|k| (*k, 0)).collect();
     for r in ch["rows"].as_array().unwrap() {
         let (f, t) = (statuses[r[0].as_u64().unwrap() as usize], statuses[r[1].as_u64().unwrap() as usize]);
         let kind = match (f == "safe", t) {
             (true, "safe") => "still-safe",
-            (true, "unsafe") => "safe-unsafe",
+            (true, "counterexample") => "safe-counterexample",
             (true, _) => "lost-safe",
             (false, "safe") => "newly-safe",
             _ => "same",
         };
         *expected.get_mut(kind).unwrap() += 1;
     }
-    for k in ["same", "still-safe", "newly-safe", "safe-unsafe"] {
+    for k in ["same", "still-safe", "newly-safe", "safe-counterexample"] {
         assert!(expected[k] > 0, "the scenario should show some '{k}' pieces: {expected:?}");
     }
     let expected = serde_json::to_value(&expected).unwrap();
@@ -548,9 +587,9 @@ fn dashboard_draws_the_changes_of_a_follow_up() {
     let rows = br.eval("document.querySelectorAll('#changes-table tbody tr').length");
     assert_eq!(rows, json!(ch["transitions"].as_array().unwrap().len()));
     let table = br.eval("document.getElementById('changes-table').textContent").as_str().unwrap().to_string();
-    assert!(table.contains(ch["summary"]["safe_to_unsafe"]["reduced"].as_str().unwrap()), "{table}");
+    assert!(table.contains(ch["summary"]["safe_to_counterexample"]["reduced"].as_str().unwrap()), "{table}");
     let legend = br.eval("document.getElementById('changes-legend').textContent");
-    assert!(legend.as_str().unwrap().contains("was safe, now unsafe"), "{legend}");
+    assert!(legend.as_str().unwrap().contains("was safe, now in a counterexample cell"), "{legend}");
     assert_eq!(br.eval("document.getElementById('ch-against').textContent"), json!(a));
     br.eval("document.getElementById('changes-view').scrollIntoView()");
     let shot = PathBuf::from(env!("CARGO_TARGET_TMPDIR")).join("dashboard-changes.png");
@@ -590,7 +629,7 @@ fn benchmark_dashboard_with_100k_cells() {
     let t = Instant::now();
     let leaves = |api: &Api| {
         let c = api.get(&format!("/api/v1/campaigns/{id}"), &sub)["cells"].clone();
-        ["pending", "leased", "safe", "unsafe", "unresolved", "failed"].iter().map(|k| c[*k].as_i64().unwrap()).sum::<i64>()
+        ["pending", "leased", "safe", "counterexample", "unresolved", "failed"].iter().map(|k| c[*k].as_i64().unwrap()).sum::<i64>()
     };
     let mut tally = Tally::default();
     while leaves(&api) < 100_000 {
@@ -612,7 +651,7 @@ fn benchmark_dashboard_with_100k_cells() {
     let t = Instant::now();
     let mut b = Browser::launch(&format!("{}/dashboard/campaigns/{id}#token={sub}", api.base));
     let drawn = b.wait_for(
-        &format!("(() => {{ const v = JSON.parse(document.getElementById('drawn').textContent); return v.total === {n} ? v : null; }})()"),
+        &format!("(() => {{ const v = JSON.parse(document.getElementById('map').dataset.drawn); return v.total === {n} ? v : null; }})()"),
         120,
         "the map with every leaf",
     );

@@ -3,7 +3,8 @@
 //! exactly 1 and the leaves tile the envelope; a worker killed with SIGKILL in the
 //! middle leaves no cell behind (its leases expire and are re-issued); every
 //! counterexample of the report replays with `tessera-worker replay`; the `tessera`
-//! client submits, gates and reports; SIGTERM stops a worker with status 0.
+//! client submits, gates, waits, shows the status and reports, every verdict with the
+//! caution; SIGTERM stops a worker with status 0.
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -129,6 +130,23 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
         .output()
         .unwrap();
     assert_eq!(gate.status.code(), Some(0), "gate: {}{}", String::from_utf8_lossy(&gate.stdout), String::from_utf8_lossy(&gate.stderr));
+    // Every verdict the client prints ends with the caution line.
+    let caution = tessera_worker::caution::CAUTION_LINE;
+    let gate_out = String::from_utf8_lossy(&gate.stdout);
+    assert!(gate_out.starts_with("pass: proven-safe fraction"), "{gate_out}");
+    assert_eq!(gate_out.lines().last(), Some(caution), "{gate_out}");
+    let status = Command::new(bin("tessera")).args(["--server", &url, "status", &id]).env("TESSERA_TOKEN", &admin).output().unwrap();
+    assert!(status.status.success());
+    let status_out = String::from_utf8_lossy(&status.stdout);
+    assert!(status_out.lines().any(|l| l.starts_with("counterexample ")), "a row for the counterexample volume: {status_out}");
+    assert!(!status_out.lines().any(|l| l.starts_with("unsafe ")), "{status_out}");
+    assert!(status_out.contains("counterexample: the volume of leaf cells"), "what the row counts: {status_out}");
+    assert_eq!(status_out.lines().last(), Some(caution), "{status_out}");
+    let wait = Command::new(bin("tessera")).args(["--server", &url, "wait", &id]).env("TESSERA_TOKEN", &admin).output().unwrap();
+    assert!(wait.status.success());
+    let wait_err = String::from_utf8_lossy(&wait.stderr);
+    assert!(wait_err.contains("counterexample"), "{wait_err}");
+    assert_eq!(wait_err.lines().last(), Some(caution), "the final line of wait: {wait_err}");
 
     let cov = get(&cov_url, &admin);
     assert_eq!(cov["state"], "done");
@@ -162,7 +180,7 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
         .output()
         .unwrap();
     assert!(md.status.success());
-    assert!(String::from_utf8_lossy(&md.stdout).contains("not a certification"));
+    assert!(String::from_utf8_lossy(&md.stdout).contains(tessera_worker::caution::CAUTION), "the report's caution in full");
 
     // The training pipeline's gate example against this live server: it uploads the
     // model, creates its own campaign, follows it to the end and passes min-safe 0.

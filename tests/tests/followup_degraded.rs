@@ -9,12 +9,13 @@
 //!   onnxruntime (`tests/reference/make_degraded_lander.py`), and the original does not;
 //! - every counterexample of B replays (`tessera-worker replay`: simulation and a
 //!   validated re-check) under the degraded controller, which picks only `cut`;
-//! - the safe→unsafe volume of the diff equals a recount from the two campaigns' leaf
-//!   boxes: the real-number overlap (widths over envelope widths) of every leaf safe in
-//!   A with every leaf of B whose counterexample replayed;
-//! - the client's `gate --no-new-unsafe` (and the pipeline's `gate.py`) fails B and passes
-//!   C (same controller as A: a cell proven safe cannot hold a sound counterexample under
-//!   the same model).
+//! - the safe→counterexample volume of the diff equals a recount from the two
+//!   campaigns' leaf boxes: the real-number overlap (widths over envelope widths) of
+//!   every leaf safe in A with every leaf of B whose counterexample replayed;
+//! - the client's `gate --no-new-counterexample` (and the pipeline's `gate.py`, under
+//!   the flag's earlier name `--no-new-unsafe`) fails B and passes C (same controller
+//!   as A: a cell proven safe cannot hold a sound counterexample under the same model),
+//!   each verdict with its caution.
 
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
@@ -167,14 +168,16 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
     let safe_a = cov_a["statuses"]["safe"]["fraction"].as_f64().unwrap();
     assert!(safe_a > 0.0, "the original controller must be proven safe somewhere for this test to mean anything: {cov_a}");
 
-    // Follow-up B, the degraded controller: the gate on new unsafe volume fails.
+    // Follow-up B, the degraded controller: the gate on new counterexample volume fails.
     let b = submit(&spec_b, Some(&a));
-    let g = tessera(&["gate", &b, "--no-new-unsafe", "--interval", "0.3"]);
+    let g = tessera(&["gate", &b, "--no-new-counterexample", "--interval", "0.3"]);
     assert_eq!(g.status.code(), Some(1), "{}", text(&g));
-    assert!(String::from_utf8_lossy(&g.stdout).contains("is unsafe now"), "{}", text(&g));
+    let out = String::from_utf8_lossy(&g.stdout);
+    assert!(out.contains("lies in cells with a counterexample now"), "{}", text(&g));
+    assert_eq!(out.lines().last(), Some(tessera_worker::caution::CAUTION_LINE), "{}", text(&g));
     let ch = get(&format!("{url}/api/v1/campaigns/{b}/changes"), &admin);
     assert_eq!(ch["final"], true, "{ch}");
-    let s2u = ch["summary"]["safe_to_unsafe"]["fraction"].as_f64().unwrap();
+    let s2u = ch["summary"]["safe_to_counterexample"]["fraction"].as_f64().unwrap();
 
     // Independent recount: replay every counterexample of B, then overlap the boxes.
     let env: Vec<[f64; 2]> = ch["envelope"].as_array().unwrap().iter().map(|p| [p[0].as_f64().unwrap(), p[1].as_f64().unwrap()]).collect();
@@ -183,7 +186,7 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
     loop {
         let page = get(&format!("{url}/api/v1/campaigns/{b}/counterexamples?limit=1000&after={after}"), &admin);
         for (k, cx) in page["counterexamples"].as_array().unwrap().iter().enumerate() {
-            if cx["cell_status"] != "unsafe" {
+            if cx["cell_status"] != "counterexample" {
                 continue; // a cell that was cut further: its leaves have their own results
             }
             let f = dir.join(format!("cx-{after}-{k}.json"));
@@ -205,18 +208,18 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
         }
     }
     let leaves_b = leaves(&url, &admin, &b);
-    let unsafe_b = leaves_b.iter().filter(|(s, _)| s == "unsafe").count();
-    assert_eq!(replayed.len(), unsafe_b, "every unsafe leaf of B has a replayed counterexample");
+    let cx_leaves_b = leaves_b.iter().filter(|(s, _)| s == "counterexample").count();
+    assert_eq!(replayed.len(), cx_leaves_b, "every counterexample leaf of B has a replayed counterexample");
     let safe_a_boxes: Vec<Vec<[f64; 2]>> = leaves(&url, &admin, &a).into_iter().filter(|(s, _)| s == "safe").map(|(_, b)| b).collect();
     let expected: f64 = safe_a_boxes.iter().map(|x| replayed.iter().map(|y| overlap(x, y, &env)).sum::<f64>()).sum();
     assert!(expected > 0.0);
     assert!((s2u - expected).abs() < 1e-12, "diff says {s2u}, recount {expected}: {ch}");
-    println!("A safe {safe_a}; B: safe→unsafe {s2u} ({}), recount {expected}", ch["summary"]["safe_to_unsafe"]["reduced"]);
+    println!("A safe {safe_a}; B: safe→counterexample {s2u} ({}), recount {expected}", ch["summary"]["safe_to_counterexample"]["reduced"]);
 
     let md = tessera(&["report", &b]);
     assert!(md.status.success());
     let md = String::from_utf8_lossy(&md.stdout);
-    assert!(md.contains("## Changes since campaign") && md.contains("Previously safe, now unsafe"), "{md}");
+    assert!(md.contains("## Changes since campaign") && md.contains("Previously safe, now in counterexample cells"), "{md}");
 
     // The training pipeline's gate example does the same against the live server.
     let gate_py = Path::new(env!("CARGO_MANIFEST_DIR")).join("../deploy/pipeline/gate.py");
@@ -228,12 +231,16 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
         .output()
         .expect("python3 must be installed");
     assert_eq!(g.status.code(), Some(1), "pipeline gate: {}", text(&g));
-    assert!(String::from_utf8_lossy(&g.stdout).contains("is unsafe now"), "{}", text(&g));
+    let out = String::from_utf8_lossy(&g.stdout);
+    assert!(out.contains("lies in cells with a counterexample now"), "{}", text(&g));
+    assert!(out.contains(tessera_worker::caution::CAUTION), "the server's caution: {}", text(&g));
 
-    // Follow-up C with the original controller: nothing proven safe before is unsafe now.
+    // Follow-up C with the original controller: nothing proven safe before lies in a
+    // counterexample cell now (the flag under its earlier name still works).
     let c = submit(&spec_a, Some(&a));
     let g = tessera(&["gate", &c, "--no-new-unsafe", "--interval", "0.3"]);
     assert_eq!(g.status.code(), Some(0), "{}", text(&g));
+    assert_eq!(String::from_utf8_lossy(&g.stdout).lines().last(), Some(tessera_worker::caution::CAUTION_LINE), "{}", text(&g));
     let t = get(&format!("{url}/api/v1/admin/campaigns/{c}/tiling"), &admin);
     assert_eq!(t["ok"], true, "{t}");
 }

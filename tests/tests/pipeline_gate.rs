@@ -24,5 +24,5 @@ fn gate_script_passes_its_checks() {
         String::from_utf8_lossy(&out.stdout),
         String::from_utf8_lossy(&out.stderr)
     );
-    assert!(String::from_utf8_lossy(&out.stdout).contains("7 checks passed"));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("8 checks passed"));
 }

@@ -317,7 +317,7 @@ fn main() {
     let mut t4 = String::from("### 4. Thread scaling (the same cells on 1 and 2 threads)\n\n| scenario | cells | 1 thread s | 2 threads s | parallel efficiency |\n|---|---|---|---|---|\n");
     let mut t5 = String::from("### 5. Engine options (adaptive campaign at a reduced depth)\n\n| scenario | depth | option | safe | unsafe | cells | CPU s |\n|---|---|---|---|---|---|---|\n");
 
-    for name in ["lander", "rover"] {
+    for name in ["lander", "aisle"] {
         let cl = load(name);
         let max_depth = if quick { cl.spec.max_depth.min(7) } else { cl.spec.max_depth.min(10) };
         eprintln!("[{:>6.0} s] {name}: adaptive campaign to depth {max_depth}", started.elapsed().as_secs_f64());

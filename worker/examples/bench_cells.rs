@@ -30,7 +30,7 @@ fn main() {
     let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo");
     println!("| scenario | cell (fraction of envelope per split dim) | cells | safe/unsafe/inconcl. | median ms | p90 ms | plant % | network % | falsify % | decided proof / one simulation |");
     println!("|---|---|---|---|---|---|---|---|---|---|");
-    for name in ["lander", "rover"] {
+    for name in ["lander", "aisle"] {
         let mut cl = load(&root.join(name).join("spec.json"));
         // Budgets as the demo sets them.
         cl.spec.engine.node_budget = 600;

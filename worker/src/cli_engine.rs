@@ -3,6 +3,7 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 use std::process::ExitCode;
+use tessera_worker::caution::{CAUTION, CAUTION_LINE};
 use tessera_worker::engine::check::check_cell;
 use tessera_worker::engine::closed_loop::ClosedLoop;
 use tessera_worker::engine::falsify;
@@ -55,6 +56,7 @@ pub fn check(spec_path: &Path, cell: Option<&str>, json: bool) -> ExitCode {
         if let Ok(abs) = std::fs::canonicalize(spec_path) {
             value["spec_path"] = serde_json::json!(abs.to_string_lossy());
         }
+        value["caution"] = serde_json::json!(CAUTION);
         println!("{}", serde_json::to_string_pretty(&value).expect("json"));
     } else {
         print_verdict(&cl, &v);
@@ -83,6 +85,7 @@ fn print_verdict(cl: &ClosedLoop, v: &Verdict) {
         "  {} tree nodes, {} periods reached, {:.1} ms (plant {:.1}, network {:.1}, falsification {:.1})",
         s.tree_nodes, s.periods_reached, s.wall_ms, s.plant_ms, s.network_ms, s.falsify_ms
     );
+    println!("{CAUTION_LINE}");
 }
 
 pub fn replay(verdict_path: &Path, spec_override: Option<&Path>) -> ExitCode {
@@ -141,7 +144,7 @@ pub fn replay(verdict_path: &Path, spec_override: Option<&Path>) -> ExitCode {
     let names: Vec<&str> = picked.iter().map(|&c| cl.spec.commands[c].name.as_str()).collect();
     println!("commands: {}", names.join(" "));
     let recheck = falsify::recheck(&cl, &cand);
-    match (hit, recheck) {
+    let code = match (hit, recheck) {
         (Some((t, r)), Some((rr, during))) => {
             println!(
                 "unsafe: enters region {r} at t = {t:.4} s (simulation); validated re-check proves region {rr} during [{:.4}, {:.4}] s",
@@ -157,5 +160,7 @@ pub fn replay(verdict_path: &Path, spec_override: Option<&Path>) -> ExitCode {
             println!("the replayed trajectory does not enter the unsafe set");
             ExitCode::from(1)
         }
-    }
+    };
+    println!("{CAUTION_LINE}");
+    code
 }

@@ -18,7 +18,8 @@ struct Cli {
 
 #[derive(Subcommand)]
 enum Cmd {
-    /// Check a campaign spec and print a verdict or every error with its JSON path.
+    /// Check a campaign spec, and the networks it names by path with the engine's own
+    /// model checks; print "valid" or every error with its JSON path.
     Validate {
         /// The spec file (JSON).
         spec: PathBuf,
@@ -217,10 +218,23 @@ fn validate(path: &PathBuf, json: bool) -> ExitCode {
             return ExitCode::from(2);
         }
     };
-    match spec::parse_spec(&text) {
-        Ok(s) => {
+    let base = path.parent().unwrap_or(std::path::Path::new("."));
+    let checked = spec::parse_spec(&text).and_then(|s| {
+        let (errs, stored) = check_models(&s, base);
+        if errs.is_empty() {
+            Ok((s, stored))
+        } else {
+            Err(errs)
+        }
+    });
+    match checked {
+        Ok((s, stored)) => {
             if json {
-                println!("{}", serde_json::json!({"valid": true, "name": s.doc.name}));
+                println!(
+                    "{}",
+                    serde_json::json!({"valid": true, "name": s.doc.name, "networks_checked": s.networks.len() - stored.len(),
+                                       "networks_stored": stored})
+                );
             } else {
                 println!(
                     "valid: '{}' — {} states, {} commands, {} networks, horizon {} periods",
@@ -230,6 +244,9 @@ fn validate(path: &PathBuf, json: bool) -> ExitCode {
                     s.networks.len(),
                     s.horizon
                 );
+                for p in &stored {
+                    println!("  {p}: a stored model; the server checks it against the spec at submission");
+                }
             }
             ExitCode::SUCCESS
         }
@@ -245,6 +262,32 @@ fn validate(path: &PathBuf, json: bool) -> ExitCode {
             ExitCode::from(1)
         }
     }
+}
+
+/// The engine's model checks on the networks a spec names by path (relative to
+/// `base`): each must load in the engine's ONNX reader and fit the spec
+/// ([`spec::Spec::check_network`], the check the engine and the server run too).
+/// Returns the errors, each naming `controller.networks[i]`, and the JSON paths of the
+/// networks given as stored models (`sha256:…`), which only the server holds.
+fn check_models(s: &spec::Spec, base: &std::path::Path) -> (Vec<spec::SpecError>, Vec<String>) {
+    let mut errs = Vec::new();
+    let mut stored = Vec::new();
+    for (i, r) in s.networks.iter().enumerate() {
+        let field = format!("controller.networks[{i}]");
+        if r.starts_with("sha256:") {
+            stored.push(field);
+            continue;
+        }
+        let file = base.join(r);
+        let loaded = std::fs::read(&file)
+            .map_err(|e| format!("cannot read {}: {e}", file.display()))
+            .and_then(|bytes| net::load_onnx(&bytes).map_err(|e| format!("{}: {e}", file.display())));
+        match loaded {
+            Ok(n) => errs.extend(s.check_network(i, n.shape())),
+            Err(message) => errs.push(spec::SpecError { path: field, message }),
+        }
+    }
+    (errs, stored)
 }
 
 fn run_worker(

@@ -63,8 +63,9 @@ fn double_integrator() -> serde_json::Value {
     })
 }
 
-/// A damped pendulum with torque commands and a bank of two networks chosen by the
-/// previous command; observation through sin and cos.
+/// A damped pendulum swinging fore and aft, driven by a constant torque one way or the
+/// other (`drive_aft`, `drive_fore`), with a bank of two networks chosen by the previous
+/// command; observation through sin and cos.
 fn pendulum_bank() -> serde_json::Value {
     serde_json::json!({
         "name": "pendulum",
@@ -84,8 +85,8 @@ fn pendulum_bank() -> serde_json::Value {
             "networks": ["a.onnx", "b.onnx"],
             "selection": {"mode": "previous_command", "network_of_command": [0, 1]},
             "decision": "argmax",
-            "commands": [{"name": "left", "set": {"tq": -0.5}}, {"name": "right", "set": {"tq": 0.5}}],
-            "initial_command": ["left", "right"]
+            "commands": [{"name": "drive_aft", "set": {"tq": -0.5}}, {"name": "drive_fore", "set": {"tq": 0.5}}],
+            "initial_command": ["drive_aft", "drive_fore"]
         },
         "unsafe": [{"all": ["th >= 1.2"]}, {"all": ["th <= -1.2"]}],
         "horizon_periods": 8,

@@ -32,7 +32,7 @@ fn python_report() -> Value {
     serde_json::from_slice(&out.stdout).expect("the check prints JSON")
 }
 
-const DEMO_SPECS: [&str; 2] = ["demo/lander/spec.json", "demo/rover/spec.json"];
+const DEMO_SPECS: [&str; 2] = ["demo/aisle/spec.json", "demo/lander/spec.json"];
 
 #[test]
 fn demo_networks_match_numpy_and_their_specs() {
@@ -77,8 +77,8 @@ fn demo_specs_validate_and_reference_existing_files() {
             assert!(file.is_file(), "{rel}: network {net} is not a file next to the spec");
         }
     }
-    let rover = parse_spec(&std::fs::read_to_string(repo_root().join(DEMO_SPECS[1])).unwrap()).unwrap();
-    assert_eq!(rover.network_of_command, vec![0, 1, 2, 3, 4], "the rover uses a bank chosen by the previous command");
+    let aisle = parse_spec(&std::fs::read_to_string(repo_root().join(DEMO_SPECS[0])).unwrap()).unwrap();
+    assert_eq!(aisle.network_of_command, vec![0, 1, 2, 3], "the aisle rover uses a bank chosen by the previous command");
 }
 
 /// Runs `demo/simulate.py` (fixed seed) and returns the printed (safe, unsafe) fractions.

@@ -1,5 +1,5 @@
-//! The demo scenarios exercise every kind of verdict, and the rover's bank really
-//! switches networks.
+//! The demo scenarios exercise every kind of verdict, "safe" is checked outside the
+//! engine, and the aisle rover's bank really switches networks.
 //!
 //! For each committed scenario (`demo/*/spec.json`), a row of cells at a moderate depth is
 //! decided by the engine (proof, then falsifier). Checked:
@@ -9,9 +9,14 @@
 //!   (a reference ONNX runtime) must pick the recorded command at every period, and an
 //!   independent RK4 integration must enter the unsafe set;
 //! - no cell proven safe holds a simulated unsafe trajectory (sampling concrete
-//!   trajectories, common practice for checking enclosures);
-//! - along rover trajectories the network in charge changes (the bank is used), with
-//!   onnxruntime agreeing on every decision.
+//!   trajectories, common practice for checking enclosures): 100 runs per safe cell in
+//!   the engine's own simulation, and 8 of them (half from the cell's corners with noise
+//!   and disturbances at the ends of their ranges) replayed outside the engine by the
+//!   same script, which must find the runtime picking the recorded commands and the
+//!   trajectory out of the unsafe set over the whole horizon. An unsound "safe" fails
+//!   here even if the engine's own simulation shared its error;
+//! - along the aisle rover's trajectories the network in charge changes (the bank is
+//!   used), with onnxruntime agreeing on every decision.
 
 use serde_json::{json, Value};
 use std::collections::BTreeSet;
@@ -62,13 +67,14 @@ fn grid(env: &[Interval], parts: &[usize], keep: &[Option<&[usize]>]) -> Vec<Vec
     cells
 }
 
-/// A closed-loop run with random noise and disturbances in their ranges (or at their
-/// ends), simulated in f64 by the engine's own runner; returns the run with the commands
-/// the controller picked.
+/// A closed-loop run from a random point of the cell with random noise and disturbances
+/// in their ranges, or (`extreme`) from a random corner of the cell with noise and
+/// disturbances at random ends of their ranges, simulated in f64 by the engine's own
+/// runner; returns the run with the commands the controller picked.
 fn random_run(cl: &ClosedLoop, cell: &[Interval], rng: &mut Rng, extreme: bool) -> Candidate {
     let spec = &cl.spec;
     let pick = |i: Interval, r: &mut Rng| if extreme { if r.unit() < 0.5 { i.lo() } else { i.hi() } } else { r.within(i) };
-    let x0: Vec<f64> = cell.iter().map(|i| rng.within(*i)).collect();
+    let x0: Vec<f64> = cell.iter().map(|i| pick(*i, rng)).collect();
     let h = spec.horizon as usize;
     let noise = (0..h).map(|_| spec.observations.iter().map(|o| pick(o.noise, rng)).collect()).collect();
     let dist = (0..h).map(|_| spec.disturbance_ranges.iter().map(|d| pick(*d, rng)).collect()).collect();
@@ -101,7 +107,7 @@ fn as_run(cl: &ClosedLoop, c: &Candidate) -> Value {
     })
 }
 
-/// Runs the Python replay; fails loudly (never skips) when python3 or a package is missing.
+/// Runs the Python replay (`tests/reference/replay_demo_counterexamples.py`); fails loudly (never skips) when python3 or a package is missing.
 fn python_replay(spec_path: &Path, runs: &[Value]) -> Vec<Value> {
     let script = repo_root().join("tests/reference/replay_demo_counterexamples.py");
     let mut child = Command::new("python3")
@@ -142,7 +148,7 @@ fn decide_row(rel: &str, cells: &[Vec<Interval>]) -> (ClosedLoop, Outcome) {
                 for i in 0..100 {
                     let run = random_run(&cl, cell, &mut rng, i % 2 == 0);
                     assert!(run.entry_time.is_nan(), "{rel}: cell {cell:?} proven safe, but a simulated run enters unsafe region {} at t = {}", run.region, run.entry_time);
-                    if i < 4 {
+                    if i < 8 {
                         sampled_runs.push(as_run(&cl, &run));
                     }
                 }
@@ -161,12 +167,25 @@ fn decide_row(rel: &str, cells: &[Vec<Interval>]) -> (ClosedLoop, Outcome) {
     let mut runs = cx_runs;
     runs.extend(sampled_runs);
     let replays = python_replay(&path, &runs);
+    assert_eq!(replays.len(), runs.len(), "{rel}: the replay answered for another number of runs");
     for (i, r) in replays.iter().enumerate() {
         assert_eq!(r["commands_agree"], json!(true), "{rel}: run {i}: onnxruntime picks another command ({r})");
         if i < n_cx {
             assert!(r["unsafe_time"].is_number(), "{rel}: counterexample {i} does not enter the unsafe set when replayed outside the engine ({r})");
+        } else {
+            // A run from a cell proven safe: outside the engine, it must stay out of the
+            // unsafe set for the whole horizon.
+            assert!(
+                r["unsafe_time"].is_null(),
+                "{rel}: a run sampled from a cell proven safe enters unsafe region {} at t = {} when replayed outside the engine ({}; {r})",
+                r["unsafe_region"],
+                r["unsafe_time"],
+                runs[i]
+            );
+            assert_eq!(r["periods_safe"].as_u64(), Some(cl.spec.horizon as u64), "{rel}: run {i} was not replayed over the whole horizon ({r})");
         }
     }
+    println!("{rel}: {} counterexamples and {} runs from safe cells replayed outside the engine", n_cx, runs.len() - n_cx);
     (cl, Outcome { safe, unsafe_, inconclusive, replays })
 }
 
@@ -181,15 +200,18 @@ fn lander_cells_of_every_kind() {
 }
 
 #[test]
-fn rover_cells_of_every_kind_and_the_bank_switches() {
-    let (cl, _) = load("demo/rover/spec.json");
-    // Depth 9 over (py, th, px): a column of 8 cells across the aisle (py), at one
-    // heading band (th, 1/8) and one start band (px, 1/8); v unsplit.
-    let th_band = 3; // th ∈ [−0.05, 0]
-    let cells = grid(&cl.envelope(), &[8, 8, 8, 1], &[Some(&[0]), None, Some(&[th_band]), None]);
-    let (cl, o) = decide_row("demo/rover/spec.json", &cells);
-    println!("rover: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
-    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "rover: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
+fn aisle_cells_of_every_kind_and_the_bank_switches() {
+    let (cl, _) = load("demo/aisle/spec.json");
+    // Depth 10 over (py, th, px): the port half of a column across the aisle (py, 8 of
+    // 16 cells, from the centre line to the port rack), at one heading band (th, 1/8)
+    // and one start band (px, 1/8); v unsplit. Starts near the centre line pass both
+    // crates; starts near the port rack reach the port crate.
+    let th_band = 3; // th ∈ [−0.0375, 0]
+    let port_half: Vec<usize> = (8..16).collect();
+    let cells = grid(&cl.envelope(), &[8, 16, 8, 1], &[Some(&[0]), Some(&port_half), Some(&[th_band]), None]);
+    let (cl, o) = decide_row("demo/aisle/spec.json", &cells);
+    println!("aisle: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
+    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "aisle: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
     // The bank: networks in charge along the replayed runs.
     let mut used = BTreeSet::new();
     let mut switching_runs = 0;
@@ -200,7 +222,7 @@ fn rover_cells_of_every_kind_and_the_bank_switches() {
             switching_runs += 1;
         }
     }
-    println!("rover: {} replayed runs, {} switch networks, networks used {:?}", o.replays.len(), switching_runs, used);
-    assert!(switching_runs > 0, "no rover run switched networks");
-    assert!(used.len() >= 3, "rover runs used only networks {used:?} of {}", cl.spec.commands.len());
+    println!("aisle: {} replayed runs, {} switch networks, networks used {:?}", o.replays.len(), switching_runs, used);
+    assert!(switching_runs > 0, "no aisle run switched networks");
+    assert!(used.len() >= 3, "aisle runs used only networks {used:?} of {}", cl.spec.commands.len());
 }

@@ -167,10 +167,23 @@ fn enclosures_hold_the_exact_image_per_mpmath() {
     println!("{stdout}{}", String::from_utf8_lossy(&o.stderr));
     std::fs::remove_file(&path).ok();
     assert!(o.status.success(), "mpmath check failed:\n{stdout}");
-    // The check must not be vacuous: most enclosures are defined.
+    // The check must not be vacuous: every function reported, each with all of its
+    // intervals read back, most enclosures defined, and at least two exact values
+    // compared per defined enclosure (each carries its two endpoints and two interior
+    // points, or all their pairs for two arguments).
+    let mut reported = Vec::new();
     for line in stdout.lines().filter(|l| l.contains("intervals,")) {
-        let nums: Vec<u64> = line.split(|c: char| !c.is_ascii_digit()).filter_map(|s| s.parse().ok()).collect();
-        let (total, defined) = (nums[nums.len() - 2], nums[nums.len() - 1]);
+        let (name, counts) = line.split_once(':').expect("name: counts");
+        let nums: Vec<u64> = counts.split(|c: char| !c.is_ascii_digit()).filter_map(|s| s.parse().ok()).collect();
+        let [total, defined, compared] = nums[..] else { panic!("unexpected line: {line}") };
+        let name = name.to_string();
+        assert_eq!(total, per_function, "intervals read back: {line}");
         assert!(defined * 2 >= total, "too few defined enclosures: {line}");
+        assert!(compared >= 2 * defined, "too few exact values compared: {line}");
+        reported.push(name);
     }
+    let mut expected: Vec<String> = unary.iter().map(|(n, _)| n.to_string()).chain(binary.iter().map(|(n, _)| n.to_string())).collect();
+    expected.sort();
+    reported.sort();
+    assert_eq!(reported, expected, "every function must be reported by the mpmath check:\n{stdout}");
 }

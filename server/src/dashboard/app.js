@@ -14,22 +14,24 @@
   const HISTORY_MS = 15000;
   // Drawing order, best to worst: where cells overlap in the chosen two axes (they
   // differ in the other dimensions) the worst status ends on top.
-  const SEVERITY = ['safe', 'pending', 'leased', 'unresolved', 'failed', 'unsafe'];
+  const SEVERITY = ['safe', 'pending', 'leased', 'unresolved', 'failed', 'counterexample'];
+  // A counterexample cell holds a checked counterexample somewhere in it: its volume
+  // bounds the unsafe volume in it from above and does not measure it.
   const LABEL = {
-    safe: 'proven safe', unsafe: 'unsafe (counterexample)', unresolved: 'unresolved',
+    safe: 'proven safe', counterexample: 'holds a counterexample', unresolved: 'unresolved',
     pending: 'pending', leased: 'being checked', failed: 'failed (worker errors)',
   };
-  const BAR_ORDER = ['safe', 'unsafe', 'unresolved', 'failed', 'leased', 'pending'];
+  const BAR_ORDER = ['safe', 'counterexample', 'unresolved', 'failed', 'leased', 'pending'];
   // Changes of a follow-up, drawn least important first so that losses end on top.
-  const CHANGE_ORDER = ['same', 'still-safe', 'newly-safe', 'lost-safe', 'safe-unsafe'];
+  const CHANGE_ORDER = ['same', 'still-safe', 'newly-safe', 'lost-safe', 'safe-counterexample'];
   const CHANGE_LABEL = {
     'same': 'not safe before nor now', 'still-safe': 'safe before and now', 'newly-safe': 'newly proven safe',
-    'lost-safe': 'was safe, now unresolved or open', 'safe-unsafe': 'was safe, now unsafe',
+    'lost-safe': 'was safe, now unresolved or open', 'safe-counterexample': 'was safe, now in a counterexample cell',
   };
   const CHANGES_MS = 10000;
   const CHANGE_ROWS = 50000;
   function changeKind(from, to) {
-    if (from === 'safe') return to === 'safe' ? 'still-safe' : (to === 'unsafe' ? 'safe-unsafe' : 'lost-safe');
+    if (from === 'safe') return to === 'safe' ? 'still-safe' : (to === 'counterexample' ? 'safe-counterexample' : 'lost-safe');
     return to === 'safe' ? 'newly-safe' : 'same';
   }
   const css = getComputedStyle(document.documentElement);
@@ -274,7 +276,6 @@
     M.changesAt = 0;
     M.changes = null;
     $('changes-view').hidden = true;
-    $('drawn').textContent = '';
     legend($('map-legend'), SEVERITY);
     await poll(refreshCampaign);
   }
@@ -320,7 +321,7 @@
     await loadLeaves(full);
     M.timing.load_ms = Math.round(performance.now() - t0);
     M.timing.full = full;
-    if (M.cexCount !== c.cells.unsafe || Date.now() - M.cexAt > 30000) await loadCounterexamples();
+    if (M.cexCount !== c.cells.counterexample || Date.now() - M.cexAt > 30000) await loadCounterexamples();
     if (Date.now() - M.historyAt > HISTORY_MS) {
       M.history = (await api(base + '/history?points=120')).points;
       M.historyAt = Date.now();
@@ -343,7 +344,7 @@
   async function loadCounterexamples() {
     const r = await api('/api/v1/campaigns/' + M.id + '/counterexamples?limit=200');
     M.cex = r.counterexamples;
-    M.cexCount = M.campaign.cells.unsafe;
+    M.cexCount = M.campaign.cells.counterexample;
     M.cexAt = Date.now();
     M.dirty = true;
   }
@@ -359,7 +360,8 @@
     volumeBar($('c-bar'), cov);
     const facts = [
       ['Proven safe', fmtPct(cov.statuses.safe.fraction) + ' of the envelope (' + cov.statuses.safe.reduced + ')'],
-      ['Unsafe', fmtPct(cov.statuses.unsafe.fraction) + ' (' + c.cells.unsafe + ' cells)'],
+      ['Holds a counterexample', fmtPct(cov.statuses.counterexample.fraction) + ' (' + c.cells.counterexample +
+        ' cells; an upper bound on the unsafe volume in them)'],
       ['Unresolved', fmtPct(cov.statuses.unresolved.fraction) + ' (' + c.cells.unresolved + ' cells)'],
       ['Pending', fmtPct(cov.statuses.pending.fraction + cov.statuses.leased.fraction) + ' (' + (c.cells.pending + c.cells.leased) + ' cells, ' + c.cells.leased + ' being checked)'],
       ['Failed', String(c.cells.failed) + ' cells'],
@@ -467,7 +469,30 @@
     return [lo, hi];
   }
 
-  function axesFrame(ctx, w, h, xr, yr, xname, yname) {
+  // A tick step of 1, 2 or 5 × 10^k, the smallest not below `raw` (common practice
+  // for axis labels).
+  function niceStep(raw) {
+    const p = Math.pow(10, Math.floor(Math.log10(raw)));
+    for (const m of [1, 2, 5]) if (m * p >= raw * (1 - 1e-9)) return m * p;
+    return 10 * p;
+  }
+
+  // Ticks of a time axis from 0 to `span` seconds at round values, in seconds,
+  // minutes or hours: [{v: seconds, label}], 3 to 6 of them.
+  function timeAxis(span) {
+    const unit = span >= 3 * 3600 ? ['hours', 3600] : span >= 180 ? ['minutes', 60] : ['seconds', 1];
+    const extent = span / unit[1];
+    const step = niceStep(extent / 5);
+    const decimals = Math.max(0, -Math.floor(Math.log10(step) + 1e-9));
+    const ticks = [];
+    for (let k = 0; k * step <= extent * (1 + 1e-9); k++) {
+      ticks.push({ v: k * step * unit[1], label: (k * step).toFixed(decimals) });
+    }
+    return { unit: unit[0], step, ticks };
+  }
+
+  // `xticks` (optional): [{v, label}] for the horizontal axis; else five even ticks.
+  function axesFrame(ctx, w, h, xr, yr, xname, yname, xticks) {
     const m = { l: 56, r: 18, t: 10, b: 40 };
     const pw = w - m.l - m.r;
     const ph = h - m.t - m.b;
@@ -480,12 +505,15 @@
     ctx.strokeRect(m.l - 0.5, m.t - 0.5, pw + 1, ph + 1);
     ctx.fillStyle = '#333';
     ctx.font = '11px system-ui, sans-serif';
+    const xt = xticks || [0, 1, 2, 3, 4].map((i) => {
+      const v = xr[0] + (xr[1] - xr[0]) * i / 4;
+      return { v, label: fmtNum(v, 3) };
+    });
+    ctx.textAlign = 'center';
+    for (const t of xt) ctx.fillText(t.label, X(t.v), m.t + ph + 14);
+    ctx.textAlign = 'right';
     for (let i = 0; i <= 4; i++) {
-      const xv = xr[0] + (xr[1] - xr[0]) * i / 4;
       const yv = yr[0] + (yr[1] - yr[0]) * i / 4;
-      ctx.textAlign = 'center';
-      ctx.fillText(fmtNum(xv, 3), X(xv), m.t + ph + 14);
-      ctx.textAlign = 'right';
       ctx.fillText(fmtNum(yv, 3), m.l - 5, Y(yv) + 4);
     }
     ctx.textAlign = 'center';
@@ -556,9 +584,8 @@
     }
     ctx.restore();
     drawn.counterexamples = k;
-    const text = JSON.stringify(drawn);
-    cv.dataset.drawn = text;
-    $('drawn').textContent = text;
+    // For tests and benchmarks only (read from the element), not shown on the page.
+    cv.dataset.drawn = JSON.stringify(drawn);
     M.view = f;
     const other = M.states.filter((_, i) => i !== ax && i !== ay);
     $('map-note').textContent = M.cells.size + ' leaf cells drawn' +
@@ -577,7 +604,7 @@
     a.href = '/dashboard/campaigns/' + encodeURIComponent(ch.against);
     $('ch-note').textContent = (ch.final ? '' : 'Provisional: a campaign is still open; open cells count as pending. ') +
       'Each row is the volume that had the first status in the earlier campaign and has the second now, exactly. ' +
-      'Unsafe volume is that of cells holding a re-checked counterexample.';
+      'Counterexample volume is that of whole cells holding a re-checked counterexample.';
     const tbody = $('changes-table').tBodies[0];
     tbody.replaceChildren(...ch.transitions.map((t) => el('tr', { class: 'c-' + changeKind(t.from, t.to) },
       el('td', {}, el('span', { class: 'state', text: t.from })),
@@ -648,7 +675,7 @@
     ctx.strokeRect(f.X(ex0), f.Y(ey1), f.X(ex1) - f.X(ex0), f.Y(ey0) - f.Y(ey1));
     ctx.setLineDash([]);
     for (const t of trs) {
-      ctx.strokeStyle = COLOR.unsafe;
+      ctx.strokeStyle = COLOR.counterexample;
       ctx.lineWidth = 1.5;
       ctx.beginPath();
       t.forEach((p, i) => {
@@ -681,7 +708,7 @@
     }));
   }
 
-  // Stacked areas of the proven-safe, unsafe and unresolved fractions over time.
+  // Stacked areas of the proven-safe, counterexample and unresolved fractions over time.
   function drawHistory() {
     const cv = $('history');
     const { ctx, w, h } = setupCanvas(cv);
@@ -694,9 +721,13 @@
     }
     const t0 = pts[0].t_ms;
     const t1 = Math.max(pts[pts.length - 1].t_ms, t0 + 1);
-    const f = axesFrame(ctx, w, h, [0, (t1 - t0) / 1000], [0, 1], 'seconds since the first result', 'fraction');
+    const span = (t1 - t0) / 1000;
+    const axis = timeAxis(span);
+    const f = axesFrame(ctx, w, h, [0, span], [0, 1], axis.unit + ' since the first result', 'fraction', axis.ticks);
+    // For tests (read from the element), not shown on the page.
+    cv.dataset.ticks = JSON.stringify({ unit: axis.unit, step: axis.step, labels: axis.ticks.map((t) => t.label) });
     let base = pts.map(() => 0);
-    for (const s of ['safe', 'unsafe', 'unresolved']) {
+    for (const s of ['safe', 'counterexample', 'unresolved']) {
       const top = pts.map((p, i) => base[i] + p[s]);
       ctx.beginPath();
       pts.forEach((p, i) => {
@@ -710,7 +741,7 @@
       base = top;
     }
     const last = pts[pts.length - 1];
-    $('history-note').textContent = 'Now: ' + fmtPct(last.safe) + ' proven safe, ' + fmtPct(last.unsafe) + ' unsafe, ' +
+    $('history-note').textContent = 'Now: ' + fmtPct(last.safe) + ' proven safe, ' + fmtPct(last.counterexample) + ' in counterexample cells, ' +
       fmtPct(last.unresolved) + ' unresolved (stacked, colours as in the map).';
   }
 

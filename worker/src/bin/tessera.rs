@@ -8,6 +8,7 @@ use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::Duration;
+use tessera_worker::caution::CAUTION_LINE;
 use tessera_worker::client::api::{Api, ApiError};
 use tessera_worker::engine::spec;
 
@@ -53,20 +54,21 @@ enum Cmd {
         interval: f64,
     },
     /// Exit 0 when the proven-safe fraction reaches --min-safe (and, with
-    /// --no-new-unsafe, no volume proven safe by the campaign it follows up is unsafe
-    /// now), 1 when the finished campaign falls short, 2 on error. Waits for the
-    /// campaign to end first.
+    /// --no-new-counterexample, no volume proven safe by the campaign it follows up
+    /// lies in a cell with a counterexample now), 1 when the finished campaign falls
+    /// short, 2 on error. Waits for the campaign to end first.
     Gate {
         id: String,
         /// Least proven-safe fraction of the envelope, in [0, 1].
-        #[arg(long, required_unless_present = "no_new_unsafe")]
+        #[arg(long, required_unless_present = "no_new_counterexample")]
         min_safe: Option<f64>,
         /// Also fail when any volume that was safe in the earlier campaign (the one
-        /// this campaign follows up, or --against) is unsafe now.
-        #[arg(long)]
-        no_new_unsafe: bool,
-        /// The campaign to compare with for --no-new-unsafe (default: the one followed up).
-        #[arg(long, value_name = "CAMPAIGN_ID", requires = "no_new_unsafe")]
+        /// this campaign follows up, or --against) lies in a cell with a checked
+        /// counterexample now. (`--no-new-unsafe` is the same flag's earlier name.)
+        #[arg(long, alias = "no-new-unsafe")]
+        no_new_counterexample: bool,
+        /// The campaign to compare with for --no-new-counterexample (default: the one followed up).
+        #[arg(long, value_name = "CAMPAIGN_ID", requires = "no_new_counterexample")]
         against: Option<String>,
         /// Seconds between polls while waiting.
         #[arg(long, default_value_t = 2.0)]
@@ -91,8 +93,8 @@ fn main() -> ExitCode {
         Cmd::Submit { spec, priority, follow_up } => submit(&api, &spec, priority, follow_up.as_deref()),
         Cmd::Status { id } => status(&api, &id),
         Cmd::Wait { id, interval } => wait(&api, &id, interval, true).map(|_| ExitCode::SUCCESS),
-        Cmd::Gate { id, min_safe, no_new_unsafe, against, interval } => {
-            gate(&api, &id, min_safe.unwrap_or(0.0), no_new_unsafe.then_some(against.as_deref()), interval)
+        Cmd::Gate { id, min_safe, no_new_counterexample, against, interval } => {
+            gate(&api, &id, min_safe.unwrap_or(0.0), no_new_counterexample.then_some(against.as_deref()), interval)
         }
         Cmd::Report { id, format } => report(&api, &id, format),
     };
@@ -179,12 +181,16 @@ fn status(api: &Api, id: &str) -> Result<ExitCode, String> {
     if let Some(eta) = cov["estimated_seconds_remaining"].as_f64() {
         println!("about {eta:.0} s left");
     }
+    if let Some(note) = cov["counterexample_note"].as_str() {
+        println!("{note}");
+    }
+    println!("{CAUTION_LINE}");
     Ok(ExitCode::SUCCESS)
 }
 
 fn bar(cov: &Value) -> String {
     let width = 40usize;
-    let parts = [("safe", '#'), ("unsafe", 'x'), ("unresolved", '?'), ("failed", '!')];
+    let parts = [("safe", '#'), ("counterexample", 'x'), ("unresolved", '?'), ("failed", '!')];
     let mut s = String::new();
     for (name, ch) in parts {
         let n = (fraction(cov, name) * width as f64).round() as usize;
@@ -195,9 +201,9 @@ fn bar(cov: &Value) -> String {
     }
     let pending = fraction(cov, "pending") + fraction(cov, "leased");
     format!(
-        "[{s}] safe {:.1}%  unsafe {:.1}%  unresolved {:.1}%  pending {:.1}%",
+        "[{s}] safe {:.1}%  counterexample {:.1}%  unresolved {:.1}%  pending {:.1}%",
         100.0 * fraction(cov, "safe"),
-        100.0 * fraction(cov, "unsafe"),
+        100.0 * fraction(cov, "counterexample"),
         100.0 * fraction(cov, "unresolved"),
         100.0 * pending
     )
@@ -221,8 +227,11 @@ fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String>
                     let _ = std::io::stderr().flush();
                 }
                 if state != "running" && state != "paused" {
-                    if show && tty {
-                        eprintln!();
+                    if show {
+                        if tty {
+                            eprintln!();
+                        }
+                        eprintln!("{CAUTION_LINE}");
                     }
                     return Ok(cov);
                 }
@@ -237,9 +246,15 @@ fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String>
     }
 }
 
-/// `no_new_unsafe`: `None` to skip the check, `Some(against)` to compare with
+/// `no_new_counterexample`: `None` to skip the check, `Some(against)` to compare with
 /// `against` (or, when that is `None`, the campaign followed up).
-fn gate(api: &Api, id: &str, min_safe: f64, no_new_unsafe: Option<Option<&str>>, interval: f64) -> Result<ExitCode, String> {
+fn gate(
+    api: &Api,
+    id: &str,
+    min_safe: f64,
+    no_new_counterexample: Option<Option<&str>>,
+    interval: f64,
+) -> Result<ExitCode, String> {
     if !(0.0..=1.0).contains(&min_safe) {
         return Err("--min-safe must be a fraction between 0 and 1".into());
     }
@@ -256,25 +271,26 @@ fn gate(api: &Api, id: &str, min_safe: f64, no_new_unsafe: Option<Option<&str>>,
         println!("fail: proven-safe fraction {safe:.6} < {min_safe}");
         pass = false;
     }
-    if let Some(against) = no_new_unsafe {
+    if let Some(against) = no_new_counterexample {
         let mut path = format!("/api/v1/campaigns/{id}/changes");
         if let Some(a) = against {
             path.push_str(&format!("?against={}", query_value(a)?));
         }
         let ch: Value = api.get_json(&path).map_err(describe)?;
-        let s2u = &ch["summary"]["safe_to_unsafe"];
-        let exact = s2u["reduced"].as_str().ok_or("the server's changes answer has no summary.safe_to_unsafe")?;
+        let s2c = &ch["summary"]["safe_to_counterexample"];
+        let exact = s2c["reduced"].as_str().ok_or("the server's changes answer has no summary.safe_to_counterexample")?;
         let before = ch["against"].as_str().unwrap_or("?");
         if exact == "0/1" {
-            println!("pass: no volume proven safe in {before} is unsafe now");
+            println!("pass: no volume proven safe in {before} lies in a cell with a counterexample now");
         } else {
             println!(
-                "fail: {exact} of the envelope ({:.6}) was proven safe in {before} and is unsafe now",
-                s2u["fraction"].as_f64().unwrap_or(f64::NAN)
+                "fail: {exact} of the envelope ({:.6}) was proven safe in {before} and lies in cells with a counterexample now",
+                s2c["fraction"].as_f64().unwrap_or(f64::NAN)
             );
             pass = false;
         }
     }
+    println!("{CAUTION_LINE}");
     Ok(if pass { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
 

@@ -155,8 +155,16 @@ pub struct Conjunction {
 pub struct Refinement {
     pub max_depth: u32,
     pub split: Vec<String>,
-    #[serde(default)]
+    /// Whether a cell with a counterexample is cut further, down to `max_depth`. On
+    /// when absent: a counterexample in a large cell must not end the search for the
+    /// safe volume inside it. Always written out in the canonical document, so a
+    /// stored campaign keeps the value it was created with.
+    #[serde(default = "yes")]
     pub refine_unsafe: bool,
+}
+
+fn yes() -> bool {
+    true
 }
 
 /// Which set representation carries the state between periods.
@@ -775,24 +783,28 @@ pub struct NetworkShape {
 }
 
 impl Spec {
+    /// Check the shape of network `index` (`controller.networks[index]`) against the
+    /// spec: one input per observation, one output per command. The one model check
+    /// shared by the engine ([`Spec::check_networks`]), `tessera-worker validate` and
+    /// the server's campaign submission; each error names the network's JSON path.
+    pub fn check_network(&self, index: usize, s: NetworkShape) -> Vec<SpecError> {
+        let p = format!("controller.networks[{index}]");
+        let mut e = Vec::new();
+        if s.inputs != self.observations.len() {
+            e.push(err(
+                p.clone(),
+                format!("network takes {} inputs but the spec has {} observations", s.inputs, self.observations.len()),
+            ));
+        }
+        if s.outputs != self.commands.len() {
+            e.push(err(p, format!("network has {} outputs but the spec has {} commands", s.outputs, self.commands.len())));
+        }
+        e
+    }
+
     /// Check the networks' shapes against the spec (`shapes[i]` for `networks[i]`).
     pub fn check_networks(&self, shapes: &[NetworkShape]) -> Result<(), Vec<SpecError>> {
-        let mut e = Vec::new();
-        for (i, s) in shapes.iter().enumerate() {
-            let p = format!("controller.networks[{i}]");
-            if s.inputs != self.observations.len() {
-                e.push(err(
-                    p.clone(),
-                    format!("network takes {} inputs but the spec has {} observations", s.inputs, self.observations.len()),
-                ));
-            }
-            if s.outputs != self.commands.len() {
-                e.push(err(
-                    p,
-                    format!("network has {} outputs but the spec has {} commands", s.outputs, self.commands.len()),
-                ));
-            }
-        }
+        let e: Vec<SpecError> = shapes.iter().enumerate().flat_map(|(i, s)| self.check_network(i, *s)).collect();
         if e.is_empty() {
             Ok(())
         } else {
@@ -913,11 +925,27 @@ mod tests {
     }
 
     #[test]
+    fn cells_with_counterexamples_are_refined_unless_the_spec_says_not() {
+        let mut v = example();
+        v["refinement"].as_object_mut().unwrap().remove("refine_unsafe");
+        let s = parse_spec(&v.to_string()).unwrap();
+        assert!(s.refine_unsafe);
+        // The canonical document states the default, so its hash pins the behaviour.
+        assert!(s.canonical_json().contains("\"refine_unsafe\":true"), "{}", s.canonical_json());
+        v["refinement"]["refine_unsafe"] = serde_json::json!(false);
+        assert!(!parse_spec(&v.to_string()).unwrap().refine_unsafe);
+    }
+
+    #[test]
     fn network_shapes_are_checked() {
         let s = parse_spec(&example().to_string()).unwrap();
         assert!(s.check_networks(&[NetworkShape { inputs: 1, outputs: 2 }]).is_ok());
         let e = s.check_networks(&[NetworkShape { inputs: 3, outputs: 2 }]).unwrap_err();
         assert_eq!(e[0].path, "controller.networks[0]");
+        let e = s.check_network(2, NetworkShape { inputs: 1, outputs: 3 });
+        assert_eq!(e.len(), 1);
+        assert_eq!(e[0].path, "controller.networks[2]");
+        assert_eq!(e[0].message, "network has 3 outputs but the spec has 2 commands");
     }
 
     #[test]

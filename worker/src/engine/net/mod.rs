@@ -138,7 +138,7 @@ mod tests {
 
     #[test]
     fn sha256_of_abc_matches_the_standard_example() {
-        // FIPS 180-2, appendix B.1: SHA-256("abc").
+        // SHA-256("abc"): FIPS 180-4, one-block example of NIST's published example values.
         assert_eq!(sha256_hex(b"abc"), "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad");
     }
 
