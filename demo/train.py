@@ -254,9 +254,6 @@ class Lander:
             "horizon_periods": cls.horizon,
             "envelope": {"h": [1.0, 10.0], "v": [-4.0, 1.0]},
             "refinement": {"max_depth": 10, "split": ["h", "v"]},
-            # Measured best for this scenario (BENCHMARKS.md, engine options): box sets with
-            # interval network bounds, decision pieces cut along the widest state.
-            "engine": {"set": "box", "bounds": "interval", "decision_split": "widest"},
         }
 
 
