@@ -115,7 +115,10 @@ pub fn search(cl: &ClosedLoop, x0: &[f64], c0: usize, effort: Effort, rng: &mut 
     let spec = &cl.spec;
     let noise = noise_points(cl, rng);
     let dists = disturbance_points(cl, rng);
-    let steps = spec.engine.sim_steps.max(1);
+    // A coarser simulation than the falsifier's (a fifth of its steps, at least 5):
+    // this is only a search; the run it returns is replayed at full resolution and
+    // re-checked before anyone may call it a counterexample.
+    let steps = (spec.engine.sim_steps / 5).max(5);
     if unsafe_region_f64(cl, x0).is_some() {
         return Some(rebuild(cl, x0, c0, &[], usize::MAX));
     }

@@ -230,22 +230,14 @@ impl ClosedLoop {
                 unit[syms.len() + (s - noise_base)] = r;
             }
         }
-        // Linear forms over the composite's inputs are bounded over the star itself (its
-        // constraints), not only over the box of its symbols.
-        let sym_of = |k: usize| if k < syms.len() { syms[k] } else { noise_base + (k - syms.len()) };
-        let bounder = star.bounder();
-        let over_star = |lam: &Array2<f64>, d: &[f64]| -> Vec<f64> {
-            (0..lam.nrows())
-                .map(|r| {
-                    let terms: Vec<(usize, f64)> = (0..lam.ncols()).filter(|&k| lam[[r, k]] != 0.0).map(|k| (sym_of(k), lam[[r, k]])).collect();
-                    let f = Affine::from_parts(d[r], &terms, 0.0);
-                    let v = bounder.lower(&f);
-                    if v == f64::INFINITY { f64::NAN } else { v }
-                })
-                .collect()
-        };
-        let over: Option<net::bounds::Concretiser> = if star.cons.is_empty() { None } else { Some(&over_star) };
-        let box_bounds = net::bounds::output_bounds_over(&composite, &unit, method, over);
+        // Cheap first: interval bounds over the box of the symbols; then the method's
+        // bounds over that box. Whatever they leave open is decided below by linear
+        // programs over the star itself.
+        let ib = net::output_bounds(&composite, &unit, BoundsMethod::Interval);
+        if possible_commands(&ib, spec.decision).len() <= 1 || method == BoundsMethod::Interval {
+            return all(possible_commands(&ib, spec.decision));
+        }
+        let box_bounds = net::output_bounds(&composite, &unit, method);
         let cands = possible_commands(&box_bounds, spec.decision);
         if cands.len() <= 1 {
             return all(cands);

@@ -183,7 +183,9 @@ fn inside_region(cl: &ClosedLoop, hull: &[Interval], set: &StateSet) -> Option<u
 }
 
 /// Search the cell for a counterexample and return the first one that re-checks.
-/// `suspect` is a point a failed proof points at; it is tried first.
+/// `suspect` is a point a failed proof points at; it is tried first. Random and extreme
+/// runs come first (cheap); then the adversary searches from the suspect, the centre
+/// and, for up to 2 states, the corners.
 pub fn falsify(
     cl: &ClosedLoop,
     cell: &[Interval],
@@ -217,8 +219,23 @@ pub fn falsify(
                 *simulations += 1;
                 let Some(cand) = simulate(cl, x0, c0, dp, np, &mut rng) else { continue };
                 if let Some((region, during)) = recheck(cl, &cand) {
-                    return Some(to_counterexample(cl, &cand, region, during));
+                    return Some(Counterexample { found_by: Some("sampling".into()), ..to_counterexample(cl, &cand, region, during) });
                 }
+            }
+        }
+    }
+    // The adversary: from the suspect, the centre and the corners, every command the
+    // noise allows, under extreme disturbances.
+    if !spec.engine.adversary {
+        return None;
+    }
+    let effort = super::adversary::Effort { frontier: 16 };
+    let corners = if n <= 2 { 1 + (1usize << n) } else { 1 };
+    for x0 in points.iter().take(corners + usize::from(suspect.is_some())) {
+        for &c0 in &spec.initial_commands {
+            let Some(cand) = super::adversary::search(cl, x0, c0, effort, &mut rng, simulations) else { continue };
+            if let Some((region, during)) = recheck(cl, &cand) {
+                return Some(Counterexample { found_by: Some("adversary".into()), ..to_counterexample(cl, &cand, region, during) });
             }
         }
     }
@@ -251,6 +268,7 @@ pub fn to_counterexample(cl: &ClosedLoop, cand: &Candidate, region: usize, durin
         entry_time: cand.entry_time,
         proven_unsafe_during: during,
         unsafe_region: region,
+        found_by: None,
     }
 }
 

@@ -15,8 +15,8 @@ use super::affine::{Affine, StateSet};
 use super::closed_loop::{possible_commands, ClosedLoop};
 use super::interval::Interval;
 use super::plant::SubstepView;
-use super::spec::{BoundsMethod, DecisionSplit, SetKind};
-use super::star::{Bounder, Star};
+use super::spec::{BoundsMethod, DecisionSplit, EngineOptions, SetKind};
+use super::star::{Bounder, Polytope, Star};
 use super::verdict::{Reason, SplitHint, Stats};
 use std::time::Instant;
 
@@ -46,6 +46,9 @@ struct Branch {
     prev: usize,
     /// Every command decided in the previous period by some state of the branch.
     came_by: Vec<usize>,
+    /// When the set is exactly a polytope of states (a template hull without initial
+    /// symbols), that polytope: later branches inside it need not be followed.
+    shape: Option<Polytope>,
 }
 
 /// Sensitivity of a blocking quantity to each split dimension, read from the
@@ -95,29 +98,35 @@ pub struct Trace {
 
 /// Attempt to prove the cell safe. Timing and tree statistics go into `stats`.
 pub fn prove(cl: &ClosedLoop, cell: &[Interval], started: Instant, stats: &mut Stats) -> Proof {
-    prove_traced(cl, cell, started, stats, None)
+    prove_with(cl, &cl.spec.engine, cell, started, stats, None)
+}
+
+/// [`prove`], recording every branch's set at the end of every period into `trace`.
+pub fn prove_traced(cl: &ClosedLoop, cell: &[Interval], started: Instant, stats: &mut Stats, trace: Option<&mut Trace>) -> Proof {
+    prove_with(cl, &cl.spec.engine, cell, started, stats, trace)
 }
 
 /// Most constraints a branch keeps, per state dimension (the oldest go first).
 const CONSTRAINTS_PER_DIM: usize = 12;
 
-/// [`prove`], recording every branch's set at the end of every period into `trace`.
-pub fn prove_traced(
+/// [`prove_traced`] with engine options other than the spec's (same guarantee: the
+/// options trade precision for time, never soundness).
+pub fn prove_with(
     cl: &ClosedLoop,
+    opts: &EngineOptions,
     cell: &[Interval],
     started: Instant,
     stats: &mut Stats,
     mut trace: Option<&mut Trace>,
 ) -> Proof {
     let spec = &cl.spec;
-    let opts = &spec.engine;
     let n = spec.states.len();
     let max_gens = (opts.generators_per_dim as usize) * n;
     let max_cons = CONSTRAINTS_PER_DIM * n + 4;
     let mut frontier: Vec<Branch> = spec
         .initial_commands
         .iter()
-        .map(|&c| Branch { set: Star::from_set(StateSet::from_box(cell)), prev: c, came_by: vec![c] })
+        .map(|&c| Branch { set: Star::from_set(StateSet::from_box(cell)), prev: c, came_by: vec![c], shape: None })
         .collect();
     // Sensitivity of the observations that left a decision open (for the node budget).
     let mut ambiguity_hint: Option<SplitHint> = None;
@@ -125,6 +134,24 @@ pub fn prove_traced(
     // mention a symbol its set's forms no longer use, so numbers are never reused).
     let mut next_symbol = n;
     let kinks = cl.plant.state_kinks();
+    // Polytopes that branches held at the end of earlier periods, by future (see below);
+    // the cell itself comes first.
+    let mut seen: Vec<((usize, usize), Polytope)> = spec
+        .initial_commands
+        .iter()
+        .map(|&c| {
+            let faces = (0..n)
+                .flat_map(|i| {
+                    let mut up = vec![0.0; n];
+                    up[i] = 1.0;
+                    let mut down = vec![0.0; n];
+                    down[i] = -1.0;
+                    [(up, cell[i].hi()), (down, -cell[i].lo())]
+                })
+                .collect();
+            (future_key(cl, c), Polytope { faces })
+        })
+        .collect();
 
     for k in 0..spec.horizon {
         let mut next: Vec<Branch> = Vec::new();
@@ -153,7 +180,7 @@ pub fn prove_traced(
             // The decision: which commands the controller may pick on this branch, each
             // with the part of the set where it may be picked.
             let t_net = Instant::now();
-            let parts = decide(cl, br, noise_base, &mut next_symbol);
+            let parts = decide(cl, opts, br, noise_base, &mut next_symbol);
             stats.network_ms += t_net.elapsed().as_secs_f64() * 1e3;
             if parts.len() > 1 && ambiguity_hint.is_none() {
                 let obs_forms: Vec<_> = spec.observations.iter().map(|o| br.set.set.eval_affine(&o.expr)).collect();
@@ -226,12 +253,29 @@ pub fn prove_traced(
                 set.reserve_symbols_below(next_symbol);
                 set.reduce(max_gens, max_cons);
                 next_symbol = next_symbol.max(set.set.num_symbols());
-                next.push(Branch { set, prev: c, came_by: vec![c] });
+                next.push(Branch { set, prev: c, came_by: vec![c], shape: None });
             }
         }
         // Keep the width bounded: join branches that share their future.
         if next.len() > opts.join_above as usize {
-            next = join_branches(cl, cell, next, max_gens, max_cons, &mut next_symbol);
+            next = join_branches(cl, opts, cell, next, max_gens, max_cons, &mut next_symbol);
+        }
+        // Branches that repeat: a set inside a polytope some branch with the same future
+        // held at the end of an earlier period (or inside the cell, before period 0,
+        // with an initial command of the same future) needs no more periods. The dynamics,
+        // the disturbance and noise bounds and the controller do not depend on time, so
+        // every run from it over the H − k periods left is a run from that earlier set
+        // over no more periods than the tree followed from there (and where that set was
+        // itself cut here, by induction on the period). Only constrained mode records sets.
+        if opts.set == SetKind::Constrained && opts.repeat_check {
+            let before = next.len();
+            next.retain(|b| !seen.iter().any(|(key, p)| *key == future_key(cl, b.prev) && p.contains(&b.set)));
+            stats.repeats += (before - next.len()) as u64;
+            for b in &next {
+                if let Some(p) = &b.shape {
+                    seen.push((future_key(cl, b.prev), p.clone()));
+                }
+            }
         }
         stats.max_branches = stats.max_branches.max(next.len() as u64);
         if let Some(t) = trace.as_deref_mut() {
@@ -331,16 +375,15 @@ fn compact(star: Star, next_symbol: &mut usize) -> Star {
 
 /// The commands the controller may pick on a branch, each with the part of the branch's
 /// set where it may be picked (a sound enclosure of that part).
-fn decide(cl: &ClosedLoop, br: &Branch, noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
+fn decide(cl: &ClosedLoop, opts: &EngineOptions, br: &Branch, noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
     let spec = &cl.spec;
-    let opts = &spec.engine;
     let methods: &[BoundsMethod] = match opts.bounds {
         BoundsMethod::Portfolio => &[BoundsMethod::Interval, BoundsMethod::Symbolic],
         BoundsMethod::Interval => &[BoundsMethod::Interval],
         BoundsMethod::Symbolic => &[BoundsMethod::Symbolic],
     };
     if opts.set == SetKind::Constrained {
-        return decide_sliced(cl, br, methods, noise_base, next_symbol);
+        return decide_sliced(cl, opts, br, methods, noise_base, next_symbol);
     }
     let set = &br.set.set;
     let obs_forms: Vec<_> = spec.observations.iter().map(|o| set.eval_affine(&o.expr)).collect();
@@ -360,7 +403,7 @@ fn decide(cl: &ClosedLoop, br: &Branch, noise_base: usize, next_symbol: &mut usi
     // Each possible command keeps only the part of the set where it may be chosen (a
     // box hull of the pieces that allow it), so a branch does not carry states that
     // would have decided otherwise.
-    restrict_to_decisions(cl, set, br.prev, &choices).into_iter().map(|(c, s)| (c, Star::from_set(s))).collect()
+    restrict_to_decisions(cl, opts, set, br.prev, &choices).into_iter().map(|(c, s)| (c, Star::from_set(s))).collect()
 }
 
 /// The decision on a constrained set, sliced where it stays open: while some piece
@@ -369,8 +412,8 @@ fn decide(cl: &ClosedLoop, br: &Branch, noise_base: usize, next_symbol: &mut usi
 /// `ε_s ≤ mid` and `ε_s ≥ mid`, which together keep every point), and decided again on
 /// each half, where the network's linear bounds are tighter. The pieces of one command
 /// are then enclosed together ([`Star::template_hull`]).
-fn decide_sliced(cl: &ClosedLoop, br: &Branch, methods: &[BoundsMethod], noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
-    let budget = cl.spec.engine.decision_pieces.max(1) as usize;
+fn decide_sliced(cl: &ClosedLoop, opts: &EngineOptions, br: &Branch, methods: &[BoundsMethod], noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
+    let budget = opts.decision_pieces.max(1) as usize;
     let decide_one = |star: &Star| {
         let mut d = cl.decide_on_star(br.prev, star, methods[0], noise_base);
         for m in &methods[1..] {
@@ -443,7 +486,7 @@ fn choices_on_box(cl: &ClosedLoop, b: &[Interval], prev: usize) -> (Vec<usize>, 
 /// intact); otherwise it gets the box hull of the pieces that allow it, with fresh
 /// symbols. Sound: every state of the set lies in a piece, and in that piece every
 /// command the controller could pick is listed by the piece's bounds.
-fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: &[usize]) -> Vec<(usize, StateSet)> {
+fn restrict_to_decisions(cl: &ClosedLoop, opts: &EngineOptions, set: &StateSet, prev: usize, choices: &[usize]) -> Vec<(usize, StateSet)> {
     if choices.len() <= 1 {
         return choices.iter().map(|&c| (c, set.clone())).collect();
     }
@@ -456,10 +499,10 @@ fn restrict_to_decisions(cl: &ClosedLoop, set: &StateSet, prev: usize, choices: 
     // relative to the hull. Neither wins everywhere (see BENCHMARKS.md).
     let (_, first_sens) = choices_on_box(cl, &hull, prev);
     let mut pieces: Vec<(Vec<Interval>, Vec<usize>, Vec<f64>)> = vec![(hull.clone(), choices.to_vec(), first_sens)];
-    while pieces.len() < cl.spec.engine.decision_pieces as usize {
+    while pieces.len() < opts.decision_pieces as usize {
         let Some(k) = pieces.iter().position(|(_, ch, _)| ch.len() > 1) else { break };
         let (b, _, sens) = pieces.swap_remove(k);
-        let score = |i: usize| match cl.spec.engine.decision_split {
+        let score = |i: usize| match opts.decision_split {
             DecisionSplit::Sensitivity => sens[i],
             DecisionSplit::Widest if hull[i].width() > 0.0 => b[i].width() / hull[i].width(),
             DecisionSplit::Widest => 0.0,
@@ -623,17 +666,11 @@ fn check_tube(
 /// it is widest (relative to the envelope): the members whose centres fall in one slab
 /// are enclosed together by [`Star::template_hull`]. Slabs keep the pieces local, so a
 /// curved or slanted set stays covered by small, tight pieces. All of it is sound.
-fn join_branches(cl: &ClosedLoop, cell: &[Interval], branches: Vec<Branch>, max_gens: usize, max_cons: usize, next_symbol: &mut usize) -> Vec<Branch> {
+fn join_branches(cl: &ClosedLoop, opts: &EngineOptions, cell: &[Interval], branches: Vec<Branch>, max_gens: usize, max_cons: usize, next_symbol: &mut usize) -> Vec<Branch> {
     let spec = &cl.spec;
-    let budget = spec.engine.join_above.max(1) as usize;
-    let constrained = spec.engine.set == SetKind::Constrained;
-    let key = |prev: usize| {
-        if !constrained || spec.latency != 0 {
-            (spec.network_of_command[prev], prev)
-        } else {
-            (spec.network_of_command[prev], usize::MAX)
-        }
-    };
+    let budget = opts.join_above.max(1) as usize;
+    let constrained = opts.set == SetKind::Constrained;
+    let key = |prev: usize| if constrained { future_key(cl, prev) } else { (spec.network_of_command[prev], prev) };
     let mut groups: Vec<Vec<Branch>> = Vec::new();
     for b in branches {
         match groups.iter_mut().find(|g| key(g[0].prev) == key(b.prev)) {
@@ -649,7 +686,7 @@ fn join_branches(cl: &ClosedLoop, cell: &[Interval], branches: Vec<Branch>, max_
         }
         let prev = g[0].prev;
         if !constrained {
-            out.push(Branch { set: Star::from_set(join_plain(g.iter().map(|b| &b.set.set).collect(), max_gens)), prev, came_by: vec![prev] });
+            out.push(Branch { set: Star::from_set(join_plain(g.iter().map(|b| &b.set.set).collect(), max_gens)), prev, came_by: vec![prev], shape: None });
             continue;
         }
         if g.len() <= budget {
@@ -744,18 +781,25 @@ fn join_branches(cl: &ClosedLoop, cell: &[Interval], branches: Vec<Branch>, max_
             }
         }
         for (_, piece, came_by) in pieces {
-            let set = if piece.len() == 1 {
-                piece.into_iter().next().unwrap()
+            let (set, shape) = if piece.len() == 1 {
+                (piece.into_iter().next().unwrap(), None)
             } else {
-                let mut joined = Star::template_hull(&piece, next_symbol);
+                let (mut joined, shape) = Star::template_hull_described(&piece, next_symbol);
                 joined.reduce(max_gens, max_cons);
-                joined
+                (joined, shape)
             };
             *next_symbol = (*next_symbol).max(set.set.num_symbols());
-            out.push(Branch { set, prev, came_by });
+            out.push(Branch { set, prev, came_by, shape });
         }
     }
     out
+}
+
+/// What the rest of the tree needs of a branch's previous command: the network it
+/// selects, and with latency 1 the command itself (it is applied in the next period).
+fn future_key(cl: &ClosedLoop, prev: usize) -> (usize, usize) {
+    let spec = &cl.spec;
+    (spec.network_of_command[prev], if spec.latency == 0 { usize::MAX } else { prev })
 }
 
 /// The constraint `form ≤ t` on the form's symbols (`None` when the form is undefined):

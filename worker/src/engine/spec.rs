@@ -229,6 +229,16 @@ pub struct EngineOptions {
     pub decision_pieces: u32,
     /// How those pieces are cut. Default `sensitivity`.
     pub decision_split: DecisionSplit,
+    /// End branches whose set lies inside a polytope an earlier period held with the
+    /// same future (constrained sets only). Default true.
+    pub repeat_check: bool,
+    /// With `constrained` sets: try boxes with interval network bounds first, and the
+    /// constrained sets only when boxes do not prove the cell but reach 40 % of the
+    /// horizon. Default true.
+    pub cheap_first: bool,
+    /// After random and extreme runs, let the adversary search every command the noise
+    /// allows for a counterexample. Default true.
+    pub adversary: bool,
     /// Simulated trajectories tried by the falsifier per cell. Default 24.
     pub falsify_samples: u32,
     /// Fixed steps per period of the falsifier's simulation. Default 50.
@@ -249,6 +259,9 @@ impl Default for EngineOptions {
             join_above: 8,
             decision_pieces: 16,
             decision_split: DecisionSplit::Sensitivity,
+            repeat_check: true,
+            cheap_first: true,
+            adversary: true,
             falsify_samples: 24,
             sim_steps: 50,
         }

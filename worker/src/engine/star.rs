@@ -66,6 +66,30 @@ impl Halfspace {
     }
 }
 
+/// A polytope of states `{x : d·x ≤ s for every face (d, s)}` (exact reals).
+#[derive(Clone, Debug)]
+pub struct Polytope {
+    pub faces: Vec<(Vec<f64>, f64)>,
+}
+
+impl Polytope {
+    /// Whether every state of `star` provably lies in the polytope: for each face,
+    /// a rigorous upper bound of `d·x` over the star (an LP) is at most `s`.
+    pub fn contains(&self, star: &Star) -> bool {
+        let b = star.bounder();
+        let comps = star.set.components();
+        self.faces.iter().all(|(d, s)| {
+            let mut f = Affine::constant(0.0);
+            for (i, a) in comps.iter().enumerate() {
+                if d[i] != 0.0 {
+                    f = f.add(&a.scale(d[i]));
+                }
+            }
+            !f.is_undefined() && -b.lower(&f.neg()) <= *s
+        })
+    }
+}
+
 /// A zonotope with linear constraints on its symbols (see the module documentation).
 #[derive(Clone, Debug)]
 pub struct Star {
@@ -241,6 +265,10 @@ impl Star {
     /// (`rhs + |a_s|`), and so are symbols no component uses any more. Constraints that
     /// every point of the box satisfies are dropped, then the oldest beyond `max_cons`.
     pub fn reduce(&mut self, max_gens: usize, max_cons: usize) {
+        // Fresh symbols must not take a number a constraint already uses (such as a
+        // decision's noise symbol, which no component mentions).
+        let top = self.cons.iter().flat_map(|h| h.terms.iter().map(|t| t.0 + 1)).max().unwrap_or(0);
+        self.set.reserve_symbols_below(top);
         // Symbols the components use.
         let mut used: Vec<usize> = self.set.components().iter().flat_map(|a| a.terms().iter().map(|t| t.0)).collect();
         used.sort_unstable();
@@ -301,17 +329,26 @@ impl Star {
     /// union's bounding box (a strip lying along a diagonal of its box is kept thin).
     /// Roundings go into right-hand sides. Undefined stars give an undefined result.
     pub fn template_hull(stars: &[Star], next_symbol: &mut usize) -> Star {
+        Star::template_hull_described(stars, next_symbol).0
+    }
+
+    /// [`Star::template_hull`], and when the result does not use the initial symbols
+    /// (`Ḡ = 0`), the polytope it stands for: every state `x` with `d·x ≤ s` for all the
+    /// listed `(d, s)` (the axes among them) is a point of the result, and every point
+    /// of every input star satisfies them.
+    pub fn template_hull_described(stars: &[Star], next_symbol: &mut usize) -> (Star, Option<Polytope>) {
         assert!(!stars.is_empty(), "hull of no stars");
         let n = stars[0].set.dim();
         let n_init = stars.iter().map(|s| s.set.num_initial()).min().unwrap_or(0);
-        let base = stars.iter().map(|s| s.set.num_symbols()).max().unwrap_or(0).max(*next_symbol);
+        let top_constrained = stars.iter().flat_map(|s| s.cons.iter().flat_map(|h| h.terms.iter().map(|t| t.0 + 1))).max().unwrap_or(0);
+        let base = stars.iter().map(|s| s.set.num_symbols()).max().unwrap_or(0).max(*next_symbol).max(top_constrained);
         let delta: Vec<usize> = (base..base + n).collect();
         *next_symbol = base + n;
         let undefined = || {
             Star::from_set(StateSet::from_forms(vec![Affine::undefined(); n], base + n, n_init))
         };
         if stars.iter().any(|s| s.set.is_undefined()) {
-            return undefined();
+            return (undefined(), None);
         }
         let half = Interval::point(0.5);
         // Ḡ: midpoint of the coefficients on each initial symbol.
@@ -366,10 +403,10 @@ impl Star {
                 let mut e = undefined();
                 e.cons.push(Halfspace { terms: Vec::new(), rhs: -1.0 });
                 e.set = StateSet::from_box(&vec![Interval::ZERO; n]);
-                return e;
+                return (e, None);
             };
             if h.is_undefined() || !h.is_bounded() {
-                return undefined();
+                return (undefined(), None);
             }
             hull_x[i] = h;
             let spread = (0..n_init).fold(Interval::ZERO, |acc, s| acc + Interval::point(gbar[i][s].abs())).hi();
@@ -377,11 +414,13 @@ impl Star {
             if spread > 0.0 {
                 let g = gbar_form(&gbar[i]);
                 match range_over_all(&|st: &Star| st.set.components()[i].sub(&g)) {
-                    Some(rr) if !rr.is_undefined() && spread + rr.rad() <= 1.25 * h.rad() => res = rr,
+                    // Worth keeping: the zonotope stays within 1.25 times the union's
+                    // width, and Ḡ carries a real share of it.
+                    Some(rr) if !rr.is_undefined() && spread + rr.rad() <= 1.25 * h.rad() && spread > 0.25 * rr.rad() => res = rr,
                     _ => gbar[i].iter_mut().for_each(|g| *g = 0.0),
                 }
             }
-            let Some((mi, ri)) = mid_rad(res) else { return undefined() };
+            let Some((mi, ri)) = mid_rad(res) else { return (undefined(), None) };
             m[i] = mi;
             r[i] = ri;
         }
@@ -440,6 +479,7 @@ impl Star {
             }
         }
         let mut cons = Vec::new();
+        let mut faces: Vec<(Vec<f64>, f64)> = Vec::new();
         for (d, known) in &dirs {
             let dot = |f: &[Affine]| -> Affine {
                 let mut acc = Affine::constant(0.0);
@@ -460,6 +500,7 @@ impl Star {
             if !sup.is_finite() {
                 continue;
             }
+            faces.push((d.clone(), sup));
             // d·x over the new set's own form: dot(comps) = const + Σ coeffs·symbols ± err.
             let form = dot(&comps);
             if form.is_undefined() {
@@ -473,7 +514,8 @@ impl Star {
             }
             cons.push(h);
         }
-        Star { set, cons }
+        let pure = gbar.iter().all(|row| row.iter().all(|g| *g == 0.0));
+        (Star { set, cons }, pure.then_some(Polytope { faces }))
     }
 
 }

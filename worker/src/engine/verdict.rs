@@ -70,6 +70,10 @@ pub struct Counterexample {
     pub proven_unsafe_during: [f64; 2],
     /// Index of the unsafe region (conjunction) entered.
     pub unsafe_region: usize,
+    /// Which search found it: `sampling` (random and extreme disturbances and noise) or
+    /// `adversary` (every command the noise allows, see the engine's adversary).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub found_by: Option<String>,
 }
 
 #[derive(Clone, Debug, Default, Serialize, Deserialize, PartialEq)]
@@ -86,6 +90,15 @@ pub struct Stats {
     pub falsify_ms: f64,
     /// Simulated trajectories tried by the falsifier.
     pub simulations: u64,
+    /// Branches ended early because their set lay inside one an earlier period held.
+    #[serde(default)]
+    pub repeats: u64,
+    /// The set representation that gave the result (`box`, `affine`, `constrained`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub method: Option<String>,
+    /// Time of the cheap box attempt made before constrained sets, milliseconds.
+    #[serde(default)]
+    pub probe_ms: f64,
 }
 
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
