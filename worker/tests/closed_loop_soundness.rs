@@ -128,6 +128,10 @@ fn run_system(spec_json: serde_json::Value, net_sizes: &[usize], seed: u64, tall
         let mut stats = Stats::default();
         let proof = prove_traced(&cl, &cell, std::time::Instant::now(), &mut stats, Some(&mut trace));
         let proven_safe = matches!(proof, Proof::Safe);
+        // The whole cell check, with its per-cell method choice (boxes first): its "safe"
+        // must hold up against the same sampled runs.
+        let v = check_cell(&cl, &cell);
+        let checked_safe = v.verdict == VerdictKind::Safe;
         for _ in 0..1000 {
             let x0: Vec<f64> = cell.iter().map(|i| rng.within(*i)).collect();
             let c0 = spec.initial_commands[(rng.next_u64() % spec.initial_commands.len() as u64) as usize];
@@ -142,6 +146,7 @@ fn run_system(spec_json: serde_json::Value, net_sizes: &[usize], seed: u64, tall
                 for s in &states {
                     if unsafe_region_f64(&cl, s).is_some() {
                         assert!(!proven_safe, "cell {cell_no} {cell:?} was proven safe but {x0:?} reaches {s:?}");
+                        assert!(!checked_safe, "cell {cell_no} {cell:?} was checked safe but {x0:?} reaches {s:?}");
                     }
                 }
                 x = states.last().unwrap().clone();
@@ -156,7 +161,6 @@ fn run_system(spec_json: serde_json::Value, net_sizes: &[usize], seed: u64, tall
                 prev = c;
             }
         }
-        let v = check_cell(&cl, &cell);
         match v.verdict {
             VerdictKind::Safe => tally.safe += 1,
             VerdictKind::Inconclusive => tally.inconclusive += 1,
@@ -172,7 +176,10 @@ fn run_system(spec_json: serde_json::Value, net_sizes: &[usize], seed: u64, tall
                 }
             }
         }
-        assert_eq!(v.verdict == VerdictKind::Safe, proven_safe, "check_cell and the proof disagree");
+        // Without the box attempt first, check_cell runs exactly this proof.
+        let mut direct = ClosedLoop::new(cl.spec.clone(), cl.nets.clone()).unwrap();
+        direct.spec.engine.cheap_first = false;
+        assert_eq!(check_cell(&direct, &cell).verdict == VerdictKind::Safe, proven_safe, "check_cell and the proof disagree");
     }
 }
 

@@ -457,10 +457,8 @@ fn stars_hold_their_sampled_points() {
 /// `reduce` must then not mint that number for a box generator: the constraint would
 /// silently restrict the new generator. Here `x = ε0 + ε2 + ε3` over symbols 0..4 with
 /// the constraint `ε4 ≤ −0.9`; the point `x = 3` (ε0 = ε2 = ε3 = 1, ε4 = −1) is in the
-/// star and must stay in its hull after `reduce(2, 8)`. Ignored while `Star::reduce`
-/// leaves the reservation to its callers (the engine's own callers reserve first).
+/// star and must stay in its hull after `reduce(2, 8)`.
 #[test]
-#[ignore = "known issue: Star::reduce can mint a symbol that a constraint already mentions"]
 fn reduce_keeps_fresh_symbols_apart_from_constraint_symbols() {
     let set = StateSet::from_forms(vec![Affine::from_parts(0.0, &[(0, 1.0), (2, 1.0), (3, 1.0)], 0.0)], 4, 1);
     let mut star = Star { set, cons: vec![Halfspace::new(vec![(4, 1.0)], -0.9)] };

@@ -234,10 +234,10 @@ impl ClosedLoop {
         // bounds over that box. Whatever they leave open is decided below by linear
         // programs over the star itself.
         let ib = net::output_bounds(&composite, &unit, BoundsMethod::Interval);
-        if possible_commands(&ib, spec.decision).len() <= 1 || method == BoundsMethod::Interval {
+        if possible_commands(&ib, spec.decision).len() <= 1 {
             return all(possible_commands(&ib, spec.decision));
         }
-        let box_bounds = net::output_bounds(&composite, &unit, method);
+        let box_bounds = if method == BoundsMethod::Interval { ib } else { net::output_bounds(&composite, &unit, method) };
         let cands = possible_commands(&box_bounds, spec.decision);
         if cands.len() <= 1 {
             return all(cands);
