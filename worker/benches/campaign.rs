@@ -296,7 +296,7 @@ fn monte_carlo(cl: &ClosedLoop, n: usize, threads: usize) -> usize {
 /// with a run that enters the unsafe set cannot be proven safe by any sound engine; a
 /// surviving cell may still hold unsafe runs the sampling missed, so this bounds the
 /// provable volume from above only approximately. Returns (surviving, drawn).
-fn ceiling(cl: &ClosedLoop, depth: u32, n: usize, threads: usize) -> (usize, usize) {
+fn ceiling(cl: &ClosedLoop, depth: u32, n: usize, threads: usize) -> (usize, usize, Vec<f64>) {
     let mut cells = grid(cl, depth);
     let mut rng = Rng::new(77);
     if cells.len() > n {
@@ -306,20 +306,26 @@ fn ceiling(cl: &ClosedLoop, depth: u32, n: usize, threads: usize) -> (usize, usi
         }
         cells.truncate(n);
     }
-    let ok = AtomicUsize::new(0);
+    let margins = Mutex::new(Vec::new());
     let next = AtomicUsize::new(0);
     std::thread::scope(|s| {
         for _ in 0..threads {
             s.spawn(|| loop {
                 let i = next.fetch_add(1, Ordering::Relaxed);
                 let Some(cell) = cells.get(i) else { break };
-                if adversary::cell_survives(cl, cell, 9, adversary::Effort { frontier: 48 }, 5000 + i as u64).is_ok() {
-                    ok.fetch_add(1, Ordering::Relaxed);
+                if let Ok(m) = adversary::cell_survives(cl, cell, 9, adversary::Effort { frontier: 48 }, 5000 + i as u64) {
+                    margins.lock().unwrap().push(m);
                 }
             });
         }
     });
-    (ok.into_inner(), cells.len())
+    let margins = margins.into_inner().unwrap();
+    (margins.len(), cells.len(), margins)
+}
+
+/// The unsafe constraints as written in the spec (the units of the margins).
+fn spec_margin_unit(cl: &ClosedLoop) -> String {
+    cl.spec.unsafe_set.iter().map(|conj| conj.iter().map(|c| c.text.as_str()).collect::<Vec<_>>().join(" and ")).collect::<Vec<_>>().join("; ")
 }
 
 /// Seconds of one fine simulation of the closed loop (from the envelope's centre).
@@ -354,6 +360,7 @@ fn main() {
     let mut t2 = String::from("### 2. Tightness: Monte Carlo and the sampled ceiling\n\n| scenario | depth | proven safe | unresolved | MC safe (95 % CI), n | proven / MC safe | ceiling (95 % CI), cells | proven / ceiling | counterexample volume (adversary's share) | MC unsafe |\n|---|---|---|---|---|---|---|---|---|---|\n");
     let mut t3 = String::from("### 3. Per-cell cost by depth (adaptive campaign)\n\n| scenario | depth | cells | safe/unsafe/inconcl. | median ms | plant % | network % | falsify % | decided: median proof / one simulation |\n|---|---|---|---|---|---|---|---|---|\n");
     let mut t4 = String::from("### 4. Thread scaling (the same cells on 1 and 2 threads)\n\n| scenario | cells | 1 thread s | 2 threads s | parallel efficiency |\n|---|---|---|---|---|\n");
+    let mut t6 = String::from("### 6. How close the adversary came to the unsafe set in surviving cells\n\nFor each cell of the ceiling sample that survives, the smallest margin of any explored run: for each unsafe region the largest of its constraint values g(x) (the region needs every g ≤ 0), then the smallest over the regions, so in the units of those constraints. A proof of the cell needs an enclosure at least that tight.\n\n| scenario | depth | surviving cells | 10th percentile | 25th percentile | median | constraints |\n|---|---|---|---|---|---|---|\n");
     let mut t5 = String::from("### 5. Which step bought what (adaptive campaign at a reduced depth)\n\n| scenario | depth | engine | safe | counterexample | cells | CPU s |\n|---|---|---|---|---|---|---|\n");
 
     for name in ["lander", "aisle"] {
@@ -426,7 +433,19 @@ fn main() {
         let (lo, hi) = wilson(good, mc_n);
         let mc_safe = good as f64 / mc_n as f64;
         eprintln!("[{:>6.0} s] {name}: sampled ceiling at depth {max_depth}", started.elapsed().as_secs_f64());
-        let (c_ok, c_n) = ceiling(&cl, max_depth, if quick { 48 } else { 256 }, threads);
+        let (c_ok, c_n, margins) = ceiling(&cl, max_depth, if quick { 48 } else { 256 }, threads);
+        let mut sorted = margins.clone();
+        sorted.sort_by(|a, b| a.total_cmp(b));
+        let q = |p: f64| sorted.get(((sorted.len() as f64 - 1.0) * p).round() as usize).copied().unwrap_or(f64::NAN);
+        writeln!(
+            t6,
+            "| {name} | {max_depth} | {c_ok} | {:.3} | {:.3} | {:.3} | {} |",
+            q(0.1),
+            q(0.25),
+            q(0.5),
+            spec_margin_unit(&cl)
+        )
+        .unwrap();
         let (c_lo, c_hi) = wilson(c_ok, c_n);
         let c_frac = c_ok as f64 / c_n as f64;
         let adv_unsafe: f64 = steps.iter().filter(|s| s.leaf && s.kind == Kind::Unsafe && s.by_adversary).map(|s| volume(s.depth)).sum();
@@ -515,7 +534,7 @@ fn main() {
         }
     }
 
-    for t in [&t1, &t2, &t3, &t4, &t5] {
+    for t in [&t1, &t2, &t6, &t3, &t4, &t5] {
         md.push_str(t);
         md.push('\n');
     }

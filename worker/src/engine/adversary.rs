@@ -112,6 +112,24 @@ fn allowed(cl: &ClosedLoop, prev: usize, x: &[f64], noise: &[Vec<f64>]) -> Vec<(
 /// Explore from `x0` (previous command `c0`) over the horizon; return the first run
 /// found that enters the unsafe set (its choices recorded), or `None`.
 pub fn search(cl: &ClosedLoop, x0: &[f64], c0: usize, effort: Effort, rng: &mut Rng, sims: &mut u64) -> Option<Candidate> {
+    let mut margin = f64::INFINITY;
+    explore(cl, x0, c0, effort, rng, sims, &mut margin)
+}
+
+/// How far a state is from the unsafe set, in the spec's own terms: for each region the
+/// largest of its constraint values `g_j(x)` (the region needs all `g_j ≤ 0`), and the
+/// smallest of those over the regions. Positive outside, ≤ 0 inside (f64, not a bound).
+pub fn unsafe_margin(cl: &ClosedLoop, x: &[f64]) -> f64 {
+    cl.spec
+        .unsafe_set
+        .iter()
+        .map(|conj| conj.iter().map(|c| c.g.eval_f64(x)).fold(f64::NEG_INFINITY, f64::max))
+        .fold(f64::INFINITY, f64::min)
+}
+
+/// [`search`], also lowering `margin` to the smallest [`unsafe_margin`] of every state
+/// it simulated.
+fn explore(cl: &ClosedLoop, x0: &[f64], c0: usize, effort: Effort, rng: &mut Rng, sims: &mut u64, margin: &mut f64) -> Option<Candidate> {
     let spec = &cl.spec;
     let noise = noise_points(cl, rng);
     let dists = disturbance_points(cl, rng);
@@ -137,6 +155,9 @@ pub fn search(cl: &ClosedLoop, x0: &[f64], c0: usize, effort: Effort, rng: &mut 
                     let states = cl.plant.simulate_period(&node.x, &spec.commands[applied].inputs, d, spec.period, steps);
                     arena.push(Step { parent: node.step, command: c, noise: nz.clone(), dist: d.clone() });
                     let here = arena.len() - 1;
+                    for st in states.iter().skip(1) {
+                        *margin = margin.min(unsafe_margin(cl, st));
+                    }
                     if states.iter().skip(1).any(|s| unsafe_region_f64(cl, s).is_some()) {
                         return Some(rebuild(cl, x0, c0, &arena, here));
                     }
@@ -223,7 +244,11 @@ fn rebuild(cl: &ClosedLoop, x0: &[f64], c0: usize, arena: &[Step], last: usize) 
 /// Whether every sampled start of the cell (its centre, its corners for up to 6 states,
 /// then random points up to `starts`) survives the adversary from every initial
 /// command. `false` comes with the first run found that enters the unsafe set.
-pub fn cell_survives(cl: &ClosedLoop, cell: &[super::interval::Interval], starts: usize, effort: Effort, seed: u64) -> Result<(), Candidate> {
+///
+/// `Ok` carries the smallest [`unsafe_margin`] met by any explored run: how close the
+/// adversary came to the unsafe set (a sound engine has to be at least that precise to
+/// prove the cell).
+pub fn cell_survives(cl: &ClosedLoop, cell: &[super::interval::Interval], starts: usize, effort: Effort, seed: u64) -> Result<f64, Candidate> {
     let mut rng = Rng::new(seed);
     let n = cell.len();
     let mut points: Vec<Vec<f64>> = vec![cell.iter().map(|i| i.mid()).collect()];
@@ -236,12 +261,14 @@ pub fn cell_survives(cl: &ClosedLoop, cell: &[super::interval::Interval], starts
         points.push(cell.iter().map(|i| rng.within(*i)).collect());
     }
     let mut sims = 0;
+    let mut margin = f64::INFINITY;
     for x0 in &points {
+        margin = margin.min(unsafe_margin(cl, x0));
         for &c0 in &cl.spec.initial_commands {
-            if let Some(c) = search(cl, x0, c0, effort, &mut rng, &mut sims) {
+            if let Some(c) = explore(cl, x0, c0, effort, &mut rng, &mut sims, &mut margin) {
                 return Err(c);
             }
         }
     }
-    Ok(())
+    Ok(margin)
 }
