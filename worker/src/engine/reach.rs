@@ -90,10 +90,14 @@ pub fn widest_normalized(cl: &ClosedLoop, cell: &[Interval]) -> SplitHint {
 }
 
 /// Per-period record of the branches (for tests): at index k, the state sets at time
-/// (k+1)·T as boxes, with the command decided in period k (the branch's `prev`).
+/// (k+1)·T as boxes, with the command decided in period k (one entry per command a
+/// joined branch stands for).
 #[derive(Default, Debug)]
 pub struct Trace {
     pub periods: Vec<Vec<(usize, Vec<Interval>)>>,
+    /// The same branches as sets: at index k, each branch's set at time (k+1)·T with
+    /// the commands decided in period k by its states.
+    pub sets: Vec<Vec<(Vec<usize>, Star)>>,
 }
 
 /// Attempt to prove the cell safe. Timing and tree statistics go into `stats`.
@@ -287,6 +291,7 @@ pub fn prove_with(
                     })
                     .collect(),
             );
+            t.sets.push(next.iter().map(|b| (b.came_by.clone(), b.set.clone())).collect());
         }
         frontier = next;
         stats.periods_reached = k + 1;
