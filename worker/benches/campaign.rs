@@ -448,7 +448,7 @@ fn main() {
         .unwrap();
         let (c_lo, c_hi) = wilson(c_ok, c_n);
         let c_frac = c_ok as f64 / c_n as f64;
-        let adv_unsafe: f64 = steps.iter().filter(|s| s.leaf && s.kind == Kind::Unsafe && s.by_adversary).map(|s| volume(s.depth)).sum();
+        let adv_unsafe: f64 = 0.0 + steps.iter().filter(|s| s.leaf && s.kind == Kind::Unsafe && s.by_adversary).map(|s| volume(s.depth)).sum::<f64>();
         writeln!(
             t2,
             "| {name} | {max_depth} | {a_safe:.4} | {:.4} | {mc_safe:.4} ({lo:.4}–{hi:.4}), {mc_n} | {:.3} | {c_frac:.4} ({c_lo:.4}–{c_hi:.4}), {c_n} | {:.3} | {a_unsafe:.4} ({adv_unsafe:.4}) | {:.4} |",
@@ -501,7 +501,7 @@ fn main() {
         writeln!(t4, "| {name} | {} | {:.2} | {:.2} | {:.0} % |", cells.len(), walls[0], walls[1], 100.0 * walls[0] / (2.0 * walls[1])).unwrap();
 
         // Engine options at a reduced depth.
-        let od = if quick { 5 } else { max_depth.min(8) };
+        let od = if quick { 5 } else { max_depth.min(7) };
         let base = cl.spec.engine.clone();
         let with = |f: &dyn Fn(&mut EngineOptions)| {
             let mut o = base.clone();
