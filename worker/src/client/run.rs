@@ -4,7 +4,7 @@
 //! are released; every result is delivered before exit).
 
 use super::api::{Api, LeasedCell, ResultItem};
-use crate::engine::check::check_cell;
+use crate::engine::check::check_cell_with;
 use crate::engine::closed_loop::ClosedLoop;
 use crate::engine::net::{self, Network};
 use crate::engine::spec::parse_spec;
@@ -285,7 +285,9 @@ fn run_cell(job: &Job) -> serde_json::Value {
         Err(e) => return serde_json::json!({"error": e.to_string()}),
     };
     let l = job.loop_.clone();
-    match std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| check_cell(&l, &cell))) {
+    // A cell that will be cut unless proven safe needs no counterexample search.
+    let falsify = !(l.spec.refine_unsafe && job.cell.depth < l.spec.max_depth);
+    match std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| check_cell_with(&l, &cell, falsify))) {
         Ok(v) => serde_json::to_value(&v).unwrap_or_else(|e| serde_json::json!({"error": e.to_string()})),
         Err(p) => {
             let msg = p
