@@ -160,7 +160,7 @@ async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
     )
     .await
     .map_err(|e| anyhow::anyhow!(e.detail))?;
-    let limits = leases::QueueLimits { lease_ms: 120_000, max_attempts: 3, max_cells_per_campaign: u64::MAX / 4 };
+    let limits = leases::QueueLimits { lease_ms: 120_000, max_attempts: 3, max_expiries: 10, max_cells_per_campaign: u64::MAX / 4 };
     let t0 = Instant::now();
     let mut n = 0u64;
     let (mut t_lease, mut t_submit) = (0.0, 0.0);
