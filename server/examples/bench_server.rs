@@ -7,7 +7,11 @@
 //!     cargo run --release -p tessera-server --example bench_server -- [--workers 8,64,256] [--seconds 15] [--batch 32]
 //!
 //! Verdicts are a deterministic function of the cell id: half inconclusive (split),
-//! a quarter safe, a quarter unsafe, so the queue neither drains nor explodes.
+//! three eighths safe, one eighth unsafe, so the queue neither drains nor explodes.
+//! They have the size of the demo's stored verdicts: about 0.6 KB for safe and
+//! inconclusive ones with their stats, about 20 KB for an unsafe one (most of it the
+//! counterexample's sampled trajectory), 3 KB on average. The texts are made once and
+//! pasted into the request bodies, so the synthetic workers cost little.
 
 use http_body_util::{BodyExt, Full};
 use hyper::body::Bytes;
@@ -21,12 +25,58 @@ use tessera_server::auth::Role;
 use tessera_server::leases::{self, SubmitItem};
 use tessera_server::Config;
 
-fn verdict_for(cell_id: &str) -> Value {
-    let k = cell_id.bytes().fold(0u32, |h, b| h.wrapping_mul(31).wrapping_add(b as u32)) % 4;
-    match k {
-        0 | 1 => json!({"verdict": "inconclusive", "split_hint": {"dim": "h", "score": 1.0}, "stats": {}}),
-        2 => json!({"verdict": "safe", "stats": {}}),
-        _ => json!({"verdict": "unsafe", "counterexample": {"h": 0.0}, "stats": {}}),
+/// The three verdict texts, made once.
+struct Verdicts {
+    inconclusive: String,
+    safe: String,
+    unsafe_: String,
+}
+
+fn stats(k: u64) -> Value {
+    json!({"tree_nodes": 412 + k, "periods_reached": 7, "max_branches": 3, "wall_ms": 83.61274512,
+           "plant_ms": 21.40913375, "network_ms": 38.11802004, "falsify_ms": 17.53390016, "simulations": 24,
+           "repeats": 5, "method": "constrained", "probe_ms": 2.716603})
+}
+
+impl Verdicts {
+    fn new() -> Verdicts {
+        let inconclusive = json!({"verdict": "inconclusive", "reason": "unsafe_not_excluded",
+            "detail": "an enclosure may meet unsafe region 0 in period 7 (sub-step 3 of 4) on 3 of 5 branches",
+            "split_hint": {"dim": "h", "score": 0.7312118}, "stats": stats(1), "engine_version": "0.1.0"});
+        let safe = json!({"verdict": "safe", "detail": "every branch stays out of the unsafe set for 24 periods",
+            "stats": stats(2), "engine_version": "0.1.0"});
+        // A counterexample entering the unsafe set after 16 periods of 0.5 s, with 17
+        // samples per period.
+        let trajectory: Vec<Value> = (0..272)
+            .map(|i| {
+                let t = i as f64 * (0.5 / 17.0);
+                json!({"t": t, "x": [0.6180339887498949 + 0.0123456789 * t.sin(), -0.3183098861837907 * (t * 0.37).cos()]})
+            })
+            .collect();
+        let unsafe_ = json!({"verdict": "unsafe",
+            "detail": "counterexample enters unsafe region 0 at t = 7.9853 s",
+            "counterexample": {"initial_state": {"h": 0.6180339887498949, "v": -0.3183098861837907},
+                "initial_command": "off",
+                "disturbances": {"w": (0..24).map(|k| 0.01 * (k as f64).sin()).collect::<Vec<f64>>()},
+                "noise": {"level": (0..24).map(|k| -0.002 * (k as f64).cos()).collect::<Vec<f64>>()},
+                "commands": (0..24).map(|k| if k % 3 == 0 { "off" } else { "on" }).collect::<Vec<&str>>(),
+                "trajectory": trajectory, "entry_time": 7.985294117647058,
+                "proven_unsafe_during": [7.98, 8.0], "unsafe_region": 0, "found_by": "sampling"},
+            "stats": stats(3), "engine_version": "0.1.0"});
+        Verdicts { inconclusive: inconclusive.to_string(), safe: safe.to_string(), unsafe_: unsafe_.to_string() }
+    }
+
+    /// The verdict of a cell, by its id: 4 in 8 inconclusive, 3 safe, 1 unsafe.
+    fn for_cell(&self, cell_id: &str) -> &str {
+        match cell_id.bytes().fold(0u32, |h, b| h.wrapping_mul(31).wrapping_add(b as u32)) % 8 {
+            0..=3 => &self.inconclusive,
+            4..=6 => &self.safe,
+            _ => &self.unsafe_,
+        }
+    }
+
+    fn mean_bytes(&self) -> f64 {
+        (4 * self.inconclusive.len() + 3 * self.safe.len() + self.unsafe_.len()) as f64 / 8.0
     }
 }
 
@@ -53,6 +103,19 @@ fn spec(model: &str) -> Value {
     })
 }
 
+/// `12345` → `12,345`.
+fn grouped(n: u64) -> String {
+    let digits = n.to_string();
+    let mut out = String::new();
+    for (i, ch) in digits.chars().enumerate() {
+        if i > 0 && (digits.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(ch);
+    }
+    out
+}
+
 fn pct(v: &mut [f64], p: f64) -> f64 {
     if v.is_empty() {
         return f64::NAN;
@@ -61,7 +124,8 @@ fn pct(v: &mut [f64], p: f64) -> f64 {
     v[((v.len() as f64 - 1.0) * p).round() as usize]
 }
 
-async fn http_run(workers: usize, seconds: u64, batch: u32) -> anyhow::Result<()> {
+/// Cells per second over HTTP.
+async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdicts>) -> anyhow::Result<f64> {
     let dir = tempfile::tempdir()?;
     let mut cfg = Config::for_tests(dir.path().join("bench.sqlite"));
     cfg.max_lease_batch = batch.max(1);
@@ -93,7 +157,7 @@ async fn http_run(workers: usize, seconds: u64, batch: u32) -> anyhow::Result<()
     let t0 = Instant::now();
     let mut tasks = Vec::new();
     for w in 0..workers {
-        let (client, base, work, done) = (client.clone(), base.clone(), work.clone(), done.clone());
+        let (client, base, work, done, verdicts) = (client.clone(), base.clone(), work.clone(), done.clone(), verdicts.clone());
         tasks.push(tokio::spawn(async move {
             let mut lease_lat = Vec::new();
             let mut submit_lat = Vec::new();
@@ -108,12 +172,17 @@ async fn http_run(workers: usize, seconds: u64, batch: u32) -> anyhow::Result<()
                     tokio::time::sleep(Duration::from_millis(5)).await;
                     continue;
                 }
-                let results: Vec<Value> = cells
-                    .iter()
-                    .map(|c| json!({"lease_id": c["lease_id"], "result": verdict_for(c["cell_id"].as_str().unwrap_or(""))}))
-                    .collect();
+                let mut body = format!(r#"{{"worker":"{name}","engine_version":"bench","results":["#);
+                for (i, c) in cells.iter().enumerate() {
+                    if i > 0 {
+                        body.push(',');
+                    }
+                    let verdict = verdicts.for_cell(c["cell_id"].as_str().unwrap_or(""));
+                    body.push_str(&format!(r#"{{"lease_id":"{}","result":{verdict}}}"#, c["lease_id"].as_str().unwrap_or("")));
+                }
+                body.push_str("]}");
+                let body = body.into_bytes();
                 let t = Instant::now();
-                let body = json!({"worker": name, "engine_version": "bench", "results": results}).to_string().into_bytes();
                 let r = call(client.clone(), format!("{base}/api/v1/results"), work.clone(), body).await?;
                 submit_lat.push(t.elapsed().as_secs_f64());
                 done.fetch_add(r["accepted"].as_u64().unwrap_or(0), Ordering::Relaxed);
@@ -139,11 +208,11 @@ async fn http_run(workers: usize, seconds: u64, batch: u32) -> anyhow::Result<()
         pct(&mut submit_lat, 0.99) * 1e3,
     );
     server.stop().await?;
-    Ok(())
+    Ok(n as f64 / elapsed)
 }
 
 /// The same lease/submit transactions, called directly on the store.
-async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
+async fn raw_run(seconds: u64, batch: u32, verdicts: &Verdicts) -> anyhow::Result<()> {
     let dir = tempfile::tempdir()?;
     let cfg = Config::for_tests(dir.path().join("raw.sqlite"));
     let store = tessera_server::Store::open(&cfg.db).await?;
@@ -160,7 +229,7 @@ async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
     )
     .await
     .map_err(|e| anyhow::anyhow!(e.detail))?;
-    let limits = leases::QueueLimits { lease_ms: 120_000, max_attempts: 3, max_cells_per_campaign: u64::MAX / 4 };
+    let limits = leases::QueueLimits { lease_ms: 120_000, max_attempts: 3, max_expiries: 10, max_cells_per_campaign: u64::MAX / 4 };
     let t0 = Instant::now();
     let mut n = 0u64;
     let (mut t_lease, mut t_submit) = (0.0, 0.0);
@@ -171,7 +240,12 @@ async fn raw_run(seconds: u64, batch: u32) -> anyhow::Result<()> {
         let t = Instant::now();
         let items: Vec<SubmitItem> = cells
             .iter()
-            .map(|c| SubmitItem { lease_id: c.lease_id.clone(), cell_id: Some(c.cell_id.clone()), result: verdict_for(&c.cell_id), elapsed_ms: None })
+            .map(|c| SubmitItem {
+                lease_id: c.lease_id.clone(),
+                cell_id: Some(c.cell_id.clone()),
+                result: serde_json::from_str(verdicts.for_cell(&c.cell_id)).expect("verdict JSON"),
+                elapsed_ms: None,
+            })
             .collect();
         let (_, stats) =
             leases::submit(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
@@ -200,11 +274,24 @@ async fn main() -> anyhow::Result<()> {
         .collect();
     let seconds: u64 = arg("--seconds").and_then(|s| s.parse().ok()).unwrap_or(15);
     let batch: u32 = arg("--batch").and_then(|s| s.parse().ok()).unwrap_or(32);
-    println!("tessera-server benchmark: {seconds} s per run, loopback, server and workers in one process");
+    let verdicts = Arc::new(Verdicts::new());
+    println!(
+        "tessera-server benchmark: {seconds} s per run, loopback, server and workers in one process; verdicts of {} / {} / {} bytes \
+         (inconclusive / safe / unsafe), {:.0} bytes on average; load average {}",
+        verdicts.inconclusive.len(),
+        verdicts.safe.len(),
+        verdicts.unsafe_.len(),
+        verdicts.mean_bytes(),
+        std::fs::read_to_string("/proc/loadavg").unwrap_or_default().split_whitespace().take(3).collect::<Vec<_>>().join(" ")
+    );
+    let mut rates = Vec::new();
     for w in workers {
-        http_run(w, seconds, batch).await?;
+        rates.push((w, http_run(w, seconds, batch, verdicts.clone()).await?));
     }
-    raw_run(seconds.min(10), batch).await?;
-    raw_run(seconds.min(10), 256).await?;
+    raw_run(seconds.min(10), batch, &verdicts).await?;
+    raw_run(seconds.min(10), 256, &verdicts).await?;
+    for (w, r) in rates {
+        println!("sqlite, {} workers: {} cells/s over HTTP", grouped(w as u64), grouped(r.round() as u64));
+    }
     Ok(())
 }

@@ -42,6 +42,7 @@ impl AppState {
         QueueLimits {
             lease_ms: self.config.lease_seconds as i64 * 1000,
             max_attempts: self.config.max_attempts,
+            max_expiries: self.config.max_expiries,
             max_cells_per_campaign: self.config.max_cells_per_campaign,
         }
     }

@@ -405,7 +405,7 @@ pub async fn cells(
     };
     let rows = sqlx::query(
         "SELECT c.rowid, c.id, c.parent_id, c.depth, c.box, c.status, c.split_dim, c.attempts, c.last_error,
-                c.lease_expires_at, r.verdict_json
+                c.lease_expires_at, r.verdict_json, c.expiries
          FROM cells c LEFT JOIN results r ON r.id = c.result_id
          WHERE c.campaign_id = ?1 AND c.rowid > ?2 AND (?3 IS NULL OR c.status = ?3) AND (?4 IS NULL OR c.depth = ?4)
          ORDER BY c.rowid LIMIT ?5",
@@ -434,6 +434,7 @@ pub async fn cells(
             "status": store::shown(&r.try_get::<String, _>(5)?),
             "split_state": split_dim.and_then(|d| info.split.get(d as usize)).map(|&k| info.states[k].clone()),
             "attempts": r.try_get::<i64, _>(7)?,
+            "expiries": r.try_get::<i64, _>(11)?,
             "last_error": r.try_get::<Option<String>, _>(8)?,
             "lease_expires_at_ms": r.try_get::<Option<i64>, _>(9)?,
             "result": verdict.and_then(|v| serde_json::from_str::<Value>(&v).ok()),

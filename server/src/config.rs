@@ -16,9 +16,14 @@ pub struct Config {
     /// Lifetime of a lease, in seconds; workers extend it while they work.
     #[arg(long, env = "TESSERA_LEASE_SECONDS", default_value_t = 120, value_parser = clap::value_parser!(u64).range(1..=86_400))]
     pub lease_seconds: u64,
-    /// Failed attempts (worker errors or expired leases) after which a cell is `failed`.
+    /// Failed attempts (results reporting an engine error) after which a cell is `failed`.
     #[arg(long, env = "TESSERA_MAX_ATTEMPTS", default_value_t = 3, value_parser = clap::value_parser!(u32).range(1..=1000))]
     pub max_attempts: u32,
+    /// Leases of one cell that may run out without a result before the cell is
+    /// `failed` (counted apart from attempts: a killed worker or an outage is not the
+    /// cell's fault, but a cell that kills every worker taking it must end somewhere).
+    #[arg(long, env = "TESSERA_MAX_EXPIRIES", default_value_t = 10, value_parser = clap::value_parser!(u32).range(1..=1000))]
+    pub max_expiries: u32,
     /// Most cells one lease request may take.
     #[arg(long, env = "TESSERA_MAX_LEASE_BATCH", default_value_t = 256, value_parser = clap::value_parser!(u32).range(1..=10_000))]
     pub max_lease_batch: u32,
@@ -47,6 +52,7 @@ impl Config {
             db,
             lease_seconds: 120,
             max_attempts: 3,
+            max_expiries: 10,
             max_lease_batch: 256,
             max_cells_per_campaign: 20_000_000,
             max_depth: 60,
@@ -59,3 +65,12 @@ impl Config {
 /// Body size limits.
 pub const MAX_MODEL_BYTES: usize = 16 * 1024 * 1024;
 pub const MAX_JSON_BYTES: usize = 1024 * 1024;
+
+#[cfg(test)]
+mod tests {
+    /// The worker keeps its requests under the limit it believes the server has.
+    #[test]
+    fn the_worker_knows_the_body_limit() {
+        assert_eq!(tessera_worker::client::outbox::SERVER_BODY_LIMIT, super::MAX_JSON_BYTES);
+    }
+}

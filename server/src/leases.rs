@@ -17,7 +17,10 @@ const CHUNK: usize = 500;
 #[derive(Clone, Copy, Debug)]
 pub struct QueueLimits {
     pub lease_ms: i64,
+    /// Results reporting an engine error after which a cell is `failed`.
     pub max_attempts: u32,
+    /// Leases run out without a result after which a cell is `failed`.
+    pub max_expiries: u32,
     pub max_cells_per_campaign: u64,
 }
 
@@ -138,26 +141,29 @@ struct Ending {
     cell_id: String,
     campaign_id: String,
     depth: u32,
-    attempts: i64,
+    expiries: i64,
     lease_id: String,
 }
 
+/// The columns [`Ending::from_row`] reads.
+const ENDING_COLS: &str = "rowid, id, campaign_id, depth, expiries, lease_id";
+
 impl Ending {
-    /// From a row of `SELECT rowid, id, campaign_id, depth, attempts, lease_id FROM cells`.
+    /// From a row of `SELECT {ENDING_COLS} FROM cells`.
     fn from_row(r: &sqlx::sqlite::SqliteRow) -> ApiResult<Ending> {
         Ok(Ending {
             rowid: r.try_get(0)?,
             cell_id: r.try_get(1)?,
             campaign_id: r.try_get(2)?,
             depth: r.try_get::<i64, _>(3)? as u32,
-            attempts: r.try_get(4)?,
+            expiries: r.try_get(4)?,
             lease_id: r.try_get::<Option<String>, _>(5)?.unwrap_or_default(),
         })
     }
 }
 
 /// Return leases that expired before `now` to the queue (or mark their cells
-/// `failed` once they have used up their attempts). Returns how many.
+/// `failed` once they have outlived `max_expiries` leases). Returns how many.
 pub async fn reclaim_expired(store: &Store, limits: QueueLimits) -> ApiResult<u64> {
     let mut w = store.write().await?;
     let mut deltas = Deltas::default();
@@ -174,10 +180,7 @@ async fn reclaim_expired_in(
     now: i64,
     deltas: &mut Deltas,
 ) -> ApiResult<u64> {
-    let rows = sqlx::query(
-        "SELECT rowid, id, campaign_id, depth, attempts, lease_id FROM cells
-         WHERE status = 'leased' AND lease_expires_at < ?",
-    )
+    let rows = sqlx::query(&format!("SELECT {ENDING_COLS} FROM cells WHERE status = 'leased' AND lease_expires_at < ?"))
     .bind(now)
     .fetch_all(&mut **tx)
     .await?;
@@ -190,8 +193,10 @@ async fn reclaim_expired_in(
     Ok(n)
 }
 
-/// End leases without a result. `expired` counts as a failed attempt; `withdrawn`
-/// (campaign cancelled) and `released` (worker stopping) do not.
+/// End leases without a result. `expired` counts one expiry (not a failed attempt:
+/// the worker may have been killed, or the server or the network away, through no
+/// fault of the cell); `withdrawn` (campaign cancelled) and `released` (worker
+/// stopping) count nothing.
 async fn end_leases(
     store: &Store,
     tx: &mut Transaction<'static, Sqlite>,
@@ -209,28 +214,28 @@ async fn end_leases(
                 .await?
                 .ok_or_else(|| ApiError::internal(format!("cell {} has no campaign", e.cell_id)))?;
             let vol = refine::volume(info.max_depth, e.depth);
-            let (attempts, status, error) = if reason == "expired" {
-                let a = e.attempts + 1;
-                if a >= limits.max_attempts as i64 {
-                    (a, "failed", Some(format!("lease expired without a result ({a} failed attempts)")))
+            let (expiries, status, error) = if reason == "expired" {
+                let n = e.expiries + 1;
+                if n >= limits.max_expiries as i64 {
+                    (n, "failed", Some(format!("{n} leases of this cell expired without a result")))
                 } else {
-                    (a, "pending", Some("lease expired without a result".to_string()))
+                    (n, "pending", None)
                 }
             } else {
-                (e.attempts, "pending", None)
+                (e.expiries, "pending", None)
             };
             deltas.moved(&e.campaign_id, "leased", status, vol);
-            rows.push((e.rowid, status, attempts, error));
+            rows.push((e.rowid, status, expiries, error));
         }
         let sql = format!(
-            "UPDATE cells SET status = v.column2, attempts = v.column3, last_error = COALESCE(v.column4, last_error),
+            "UPDATE cells SET status = v.column2, expiries = v.column3, last_error = COALESCE(v.column4, last_error),
              lease_id = NULL, lease_expires_at = NULL, leased_by = NULL, updated_at = ?
              FROM (VALUES {}) AS v WHERE cells.rowid = v.column1",
             tuples(rows.len(), 4)
         );
         let mut q = sqlx::query(&sql).bind(now);
-        for (rowid, status, attempts, error) in &rows {
-            q = q.bind(*rowid).bind(*status).bind(*attempts).bind(error.clone());
+        for (rowid, status, expiries, error) in &rows {
+            q = q.bind(*rowid).bind(*status).bind(*expiries).bind(error.clone());
         }
         q.execute(&mut **tx).await?;
         let sql = format!(
@@ -255,7 +260,7 @@ pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -
     let mut ends = Vec::new();
     for chunk in lease_ids.chunks(CHUNK) {
         let sql = format!(
-            "SELECT rowid, id, campaign_id, depth, attempts, lease_id FROM cells WHERE status = 'leased' AND lease_id IN ({})",
+            "SELECT {ENDING_COLS} FROM cells WHERE status = 'leased' AND lease_id IN ({})",
             vec!["?"; chunk.len()].join(", ")
         );
         let mut q = sqlx::query(&sql);
@@ -287,9 +292,7 @@ pub async fn withdraw_leases(
     campaign: &str,
     deltas: &mut Deltas,
 ) -> ApiResult<()> {
-    let rows = sqlx::query(
-        "SELECT rowid, id, campaign_id, depth, attempts, lease_id FROM cells WHERE campaign_id = ? AND status = 'leased'",
-    )
+    let rows = sqlx::query(&format!("SELECT {ENDING_COLS} FROM cells WHERE campaign_id = ? AND status = 'leased'"))
     .bind(campaign)
     .fetch_all(&mut **tx)
     .await?;
@@ -312,7 +315,9 @@ pub struct ExtendItem {
     pub expires_at_ms: Option<i64>,
 }
 
-/// Push the expiry of each still-valid lease to now + lease time.
+/// Push the expiry of each lease still held to now + lease time. A lease that ran
+/// out but was not swept yet is held still (nobody else has the cell) and is
+/// extended too: after an outage longer than the lease, the worker keeps its cells.
 pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ExtendItem>> {
     let mut w = store.write().await?;
     let now = now_ms();
@@ -320,11 +325,11 @@ pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) ->
     let mut extended = HashSet::new();
     for chunk in lease_ids.chunks(CHUNK) {
         let sql = format!(
-            "UPDATE cells SET lease_expires_at = ?, updated_at = ? WHERE status = 'leased' AND lease_expires_at >= ?
+            "UPDATE cells SET lease_expires_at = ?, updated_at = ? WHERE status = 'leased'
              AND lease_id IN ({}) RETURNING lease_id",
             vec!["?"; chunk.len()].join(", ")
         );
-        let mut q = sqlx::query_scalar::<_, String>(&sql).bind(expires).bind(now).bind(now);
+        let mut q = sqlx::query_scalar::<_, String>(&sql).bind(expires).bind(now);
         for l in chunk {
             q = q.bind(l.as_str());
         }
@@ -343,8 +348,8 @@ pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) ->
     Ok(out)
 }
 
-/// Why a lease id is not held by any cell: `completed`, `expired`, `withdrawn` or
-/// `unknown_lease` (an expired lease not yet swept also reads `expired`).
+/// Why a lease id is not held by any cell: `completed`, `expired`, `withdrawn`,
+/// `released` or `unknown_lease`.
 async fn ended_status(tx: &mut Transaction<'static, Sqlite>, lease_id: &str) -> ApiResult<&'static str> {
     let done: Option<i64> =
         sqlx::query_scalar("SELECT 1 FROM results WHERE lease_id = ?").bind(lease_id).fetch_optional(&mut **tx).await?;
@@ -392,7 +397,8 @@ pub struct SubmitItem {
 pub struct SubmitAnswer {
     pub lease_id: String,
     /// `accepted`; or, with nothing recorded: `duplicate` (already answered),
-    /// `expired` (lease ran out; the cell went back to the queue), `withdrawn`
+    /// `expired` (the lease ran out and the cell was leased again or decided since; a
+    /// result for an expired lease whose cell nobody else took is accepted), `withdrawn`
     /// (campaign cancelled), `unknown_lease`, `invalid` (bad result JSON).
     pub status: String,
     /// Status of the cell after an accepted result.
@@ -460,13 +466,17 @@ pub struct SubmitStats {
     pub cells_created: u64,
 }
 
+/// A cell a submitted result may decide: held by the result's lease (`leased`, even
+/// if the lease ran out and was not swept yet), or returned to the queue when that
+/// lease expired and not leased again since (`pending`).
 struct HeldCell {
     rowid: i64,
     id: String,
     campaign_id: String,
     depth: u32,
     cell: CellBox,
-    expires_at: i64,
+    /// `leased` or `pending`: the counter the cell leaves.
+    from: &'static str,
     attempts: i64,
     leased_at: Option<i64>,
     /// A follow-up's re-joined cell: cut here, into the earlier halves, unless safe.
@@ -503,34 +513,41 @@ pub async fn submit(
     let wanted: Vec<&str> =
         items.iter().zip(&outcomes).filter(|(_, o)| o.is_some()).map(|(it, _)| it.lease_id.as_str()).collect();
     let mut held: HashMap<String, HeldCell> = HashMap::new();
-    for chunk in wanted.chunks(CHUNK) {
-        let sql = format!(
-            "SELECT rowid, id, campaign_id, depth, box, lease_expires_at, attempts, leased_at, lease_id, coarse_dim FROM cells
-             WHERE status = 'leased' AND lease_id IN ({})",
-            vec!["?"; chunk.len()].join(", ")
-        );
-        let mut q = sqlx::query(&sql);
-        for l in chunk {
-            q = q.bind(*l);
-        }
-        for r in q.fetch_all(&mut *w.tx).await? {
-            let id: String = r.try_get(1)?;
-            let b: Vec<u8> = r.try_get(4)?;
-            let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
-            held.insert(
-                r.try_get(8)?,
-                HeldCell {
+    // Held by the lease itself; then, for leases not found so, cells whose lease
+    // expired, were swept back to the queue and were not leased again (nobody else
+    // holds them), in campaigns still open, for leases without a result yet.
+    const HELD: &str = "SELECT rowid, id, campaign_id, depth, box, status, attempts, leased_at, lease_id, coarse_dim
+         FROM cells WHERE status = 'leased' AND lease_id IN";
+    const SWEPT: &str =
+        "SELECT c.rowid, c.id, c.campaign_id, c.depth, c.box, c.status, c.attempts, c.leased_at, e.lease_id, c.coarse_dim
+         FROM ended_leases e JOIN cells c ON c.id = e.cell_id JOIN campaigns k ON k.id = c.campaign_id
+         WHERE e.reason = 'expired' AND c.status = 'pending' AND k.state IN ('running', 'paused')
+         AND NOT EXISTS (SELECT 1 FROM results r WHERE r.lease_id = e.lease_id) AND e.lease_id IN";
+    for pass in [HELD, SWEPT] {
+        let ids: Vec<&str> = wanted.iter().copied().filter(|l| !held.contains_key(*l)).collect();
+        for chunk in ids.chunks(CHUNK) {
+            let sql = format!("{pass} ({})", vec!["?"; chunk.len()].join(", "));
+            let mut q = sqlx::query(&sql);
+            for l in chunk {
+                q = q.bind(*l);
+            }
+            for r in q.fetch_all(&mut *w.tx).await? {
+                let id: String = r.try_get(1)?;
+                let b: Vec<u8> = r.try_get(4)?;
+                let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
+                let from = if r.try_get::<String, _>(5)? == "leased" { "leased" } else { "pending" };
+                held.entry(r.try_get(8)?).or_insert(HeldCell {
                     rowid: r.try_get(0)?,
                     id,
                     campaign_id: r.try_get(2)?,
                     depth: r.try_get::<i64, _>(3)? as u32,
                     cell,
-                    expires_at: r.try_get::<Option<i64>, _>(5)?.unwrap_or(0),
+                    from,
                     attempts: r.try_get(6)?,
                     leased_at: r.try_get(7)?,
                     coarse_dim: r.try_get::<Option<i64>, _>(9)?.and_then(|d| usize::try_from(d).ok()),
-                },
-            );
+                });
+            }
         }
     }
 
@@ -556,7 +573,8 @@ pub async fn submit(
     let mut result_rows = Vec::new();
     let mut cell_rows = Vec::new();
     let mut children = Vec::new();
-    let mut expired = Vec::new();
+    // A cell takes one result per batch (two expired leases of one cell may both answer).
+    let mut decided: HashSet<String> = HashSet::new();
     let mut per_campaign: HashMap<String, i64> = HashMap::new();
     let mut stats = SubmitStats::default();
     for (i, it) in items.iter().enumerate() {
@@ -566,7 +584,7 @@ pub async fn submit(
             let status = if status == "completed" { "duplicate" } else { status };
             let detail = match status {
                 "duplicate" => "a result for this lease was already accepted; this one is ignored",
-                "expired" => "the lease expired before the result arrived; the cell was returned to the queue",
+                "expired" => "the lease expired and its cell was leased again, or decided, before the result arrived",
                 "withdrawn" => "the campaign was cancelled; the result is ignored",
                 "released" => "the worker released this lease; the cell went back to the queue",
                 _ => "no such lease",
@@ -578,20 +596,8 @@ pub async fn submit(
             answers[i] = Some(reject(it, "invalid", &format!("this lease is for cell {}, not the cell_id given", h.id)));
             continue;
         }
-        if h.expires_at < now {
-            answers[i] = Some(reject(
-                it,
-                "expired",
-                "the lease expired before the result arrived; the cell was returned to the queue",
-            ));
-            expired.push(Ending {
-                rowid: h.rowid,
-                cell_id: h.id,
-                campaign_id: h.campaign_id,
-                depth: h.depth,
-                attempts: h.attempts,
-                lease_id: it.lease_id.clone(),
-            });
+        if !decided.insert(h.id.clone()) {
+            answers[i] = Some(reject(it, "expired", "the lease expired and another result for its cell came first"));
             continue;
         }
         let info = &infos[&h.campaign_id];
@@ -653,10 +659,10 @@ pub async fn submit(
         // nodes are counted but carry no volume: their volumes would sum to more
         // than the envelope (and overflow i64 for deep trees).
         if status == "split" {
-            deltas.add(&h.campaign_id, "leased", -1, -vol);
+            deltas.add(&h.campaign_id, h.from, -1, -vol);
             deltas.add(&h.campaign_id, "split", 1, 0);
         } else {
-            deltas.moved(&h.campaign_id, "leased", status, vol);
+            deltas.moved(&h.campaign_id, h.from, status, vol);
         }
         if !matches!(outcome, Outcome::Error(_)) {
             *per_campaign.entry(h.campaign_id.clone()).or_insert(0) += 1;
@@ -733,7 +739,6 @@ pub async fn submit(
         .execute(&mut *w.tx)
         .await?;
     }
-    end_leases(store, &mut w.tx, limits, now, expired, "expired", &mut deltas).await?;
     deltas.apply(&mut w.tx).await?;
     w.commit().await?;
 

@@ -323,11 +323,11 @@ async fn leases_expire_are_reissued_and_duplicates_are_ignored() {
     assert_eq!(ext[0]["status"], "expired");
     assert_eq!(ext[1]["status"], "completed");
 
-    // The expiry counted as an attempt on that cell.
+    // The expiry is counted as an expiry, not as a failed attempt of the engine.
     let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?status=split&depth=1"), ts.token(Role::Viewer)).await;
     let cells = r.json()["cells"].as_array().unwrap().clone();
     let c = cells.iter().find(|c| c["id"] == halves[1]["cell_id"]).unwrap();
-    assert_eq!(c["attempts"], 1);
+    assert_eq!((c["attempts"].as_i64(), c["expiries"].as_i64()), (Some(0), Some(1)), "{c}");
 
     // The periodic sweep returns a lease nobody asks about.
     let stray = lease(&ts, 1).await;
@@ -340,6 +340,97 @@ async fn leases_expire_are_reissued_and_duplicates_are_ignored() {
     drive(&ts, 4, None).await;
     assert_expected_fractions(&coverage(&ts, &id).await);
     assert_eq!(tiling(&ts, &id).await["ok"], true);
+    ts.server.stop().await.unwrap();
+}
+
+/// A result for a lease that ran out still counts while nobody else holds its cell:
+/// before the sweep (the cell still names the lease), and after it as long as the
+/// cell waits in the queue. Once another lease holds the cell, the late result is
+/// refused. Expiries never use up the engine's attempts (the default limit of 3
+/// stays untouched); `--max-expiries` ends a cell that keeps outliving its leases.
+#[tokio::test]
+async fn late_results_count_while_nobody_else_holds_the_cell() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut cfg = config(dir.path());
+    cfg.lease_seconds = 1;
+    // No periodic sweep: the test sweeps when it wants to (lease requests sweep too).
+    cfg.sweep_seconds = 3600;
+    cfg.max_expiries = 3;
+    let ts = start(cfg).await;
+    let limits = ts.server.state.limits();
+    let store = ts.server.state.store.clone();
+    let model = upload_model(&ts, "late").await;
+    let id = create_campaign(&ts, &spec(&model, 4), "").await;
+    let sleep = || tokio::time::sleep(std::time::Duration::from_millis(1300));
+    let cell_of = |cell_id: Value| {
+        let ts = &ts;
+        let id = id.clone();
+        async move {
+            let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?limit=1000"), ts.token(Role::Viewer)).await;
+            r.json()["cells"].as_array().unwrap().iter().find(|c| c["id"] == cell_id).unwrap().clone()
+        }
+    };
+
+    // Expired, not swept: an extend revives the lease (nobody else has the cell) ...
+    let root = lease(&ts, 1).await;
+    let l0 = root[0]["lease_id"].as_str().unwrap().to_string();
+    sleep().await;
+    let r = ts.client.post("/api/v1/leases/extend", ts.token(Role::Worker), &json!({"lease_ids": [l0]})).await;
+    assert_eq!(r.json()["items"][0]["status"], "extended", "{}", r.text());
+    // ... and after it ran out again, the result is accepted.
+    sleep().await;
+    let a = submit(&ts, &[(l0.clone(), scripted(&root[0]))]).await;
+    assert_eq!((a[0]["status"].as_str(), a[0]["cell_status"].as_str()), (Some("accepted"), Some("split")), "{a:?}");
+
+    // Expired and swept back to the queue.
+    let halves = lease(&ts, 2).await;
+    assert_eq!(halves.len(), 2);
+    sleep().await;
+    assert_eq!(tessera_server::leases::reclaim_expired(&store, limits).await.unwrap(), 2);
+    let c = cell_of(halves[0]["cell_id"].clone()).await;
+    assert_eq!((c["status"].as_str(), c["attempts"].as_i64(), c["expiries"].as_i64()), (Some("pending"), Some(0), Some(1)), "{c}");
+    // The first half waits in the queue: its late result counts (safe, so that no
+    // new cells join the queue).
+    let safe = json!({"verdict": "safe", "reason": "scripted", "split_hint": null, "counterexample": null, "stats": {}});
+    let l_a = halves[0]["lease_id"].as_str().unwrap().to_string();
+    let a = submit(&ts, &[(l_a.clone(), safe.clone())]).await;
+    assert_eq!((a[0]["status"].as_str(), a[0]["cell_status"].as_str()), (Some("accepted"), Some("safe")), "{a:?}");
+    // Sent again (an answer lost on the way): a duplicate, not a second result.
+    let a = submit(&ts, &[(l_a.clone(), safe.clone())]).await;
+    assert_eq!(a[0]["status"], "duplicate", "{a:?}");
+    // The second half is leased again before its late result arrives: refused.
+    let again = lease(&ts, 5).await;
+    assert_eq!(again.len(), 1, "{again:?}");
+    assert_eq!(again[0]["cell_id"], halves[1]["cell_id"]);
+    let a = submit(&ts, &[(halves[1]["lease_id"].as_str().unwrap().into(), scripted(&halves[1]))]).await;
+    assert_eq!(a[0]["status"], "expired", "{a:?}");
+
+    // A cell whose leases keep running out: failed after the third expiry, with
+    // its attempts untouched; a late result for it no longer counts.
+    let stuck = again[0].clone();
+    let mut last = stuck["lease_id"].as_str().unwrap().to_string();
+    for k in 2..=3 {
+        sleep().await;
+        assert_eq!(tessera_server::leases::reclaim_expired(&store, limits).await.unwrap(), 1);
+        let c = cell_of(stuck["cell_id"].clone()).await;
+        assert_eq!(c["expiries"], k, "{c}");
+        if k < 3 {
+            let l = lease(&ts, 5).await;
+            assert_eq!(l.len(), 1, "{l:?}");
+            last = l[0]["lease_id"].as_str().unwrap().to_string();
+        }
+    }
+    let c = cell_of(stuck["cell_id"].clone()).await;
+    assert_eq!((c["status"].as_str(), c["attempts"].as_i64()), (Some("failed"), Some(0)), "{c}");
+    assert_eq!(c["last_error"], "3 leases of this cell expired without a result");
+    let a = submit(&ts, &[(last, scripted(&stuck))]).await;
+    assert_eq!(a[0]["status"], "expired", "{a:?}");
+
+    // Counted once each, and the counters equal the recount.
+    let cov = coverage(&ts, &id).await;
+    assert_eq!(cov["results"], 2, "{cov}");
+    let t = tiling(&ts, &id).await;
+    assert_eq!(t["ok"], true, "{t}");
     ts.server.stop().await.unwrap();
 }
 

@@ -308,15 +308,17 @@ fn results_for_ended_leases_or_other_cells_are_refused_and_not_counted() {
     assert_eq!(r[0]["status"], "duplicate", "{r:?}");
     tried += 1;
 
-    // B's lease expires (1 s leases, swept every second); its late result is refused.
+    // B's lease expires (1 s leases, swept every second) and B's root is leased
+    // again: the late result of the first lease is refused (a late result whose cell
+    // nobody took meanwhile would count; server/tests/campaign.rs tests that).
     std::thread::sleep(Duration::from_millis(2500));
+    let leases = lease();
+    let lb2 = leases.iter().find(|l| l["campaign_id"] == b.as_str()).expect("B's root is leased again").clone();
     let r = submit(json!([{"lease_id": lb["lease_id"], "result": safe}]));
     assert_eq!(r[0]["status"], "expired", "{r:?}");
     tried += 1;
 
     // A lease of a campaign cancelled meanwhile: withdrawn.
-    let leases = lease();
-    let lb2 = leases.iter().find(|l| l["campaign_id"] == b.as_str()).expect("B's root is leased again").clone();
     let (st, c) = call("POST", &format!("{url}/api/v1/campaigns/{b}/cancel"), &admin, Some((b"", "application/json")));
     assert_eq!(st, 200, "{c}");
     let r = submit(json!([{"lease_id": lb2["lease_id"], "result": safe}]));

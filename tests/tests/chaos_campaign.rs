@@ -75,9 +75,9 @@ impl Setup {
         let log = std::fs::File::create(self.dir.join(format!("server-{incarnation}.log"))).unwrap();
         let c = Command::new(bin("tessera-server"))
             .args(["serve", "--listen", &format!("127.0.0.1:{}", self.port)])
-            // Short leases so that a killed worker's cells come back quickly; many
-            // attempts so that a cell hit by several kills is re-leased, not failed.
-            .args(["--lease-seconds", "2", "--sweep-seconds", "1", "--max-attempts", "100"])
+            // Short leases so that a killed worker's cells come back quickly. The
+            // attempt and expiry limits are the defaults: kills must not fail a cell.
+            .args(["--lease-seconds", "2", "--sweep-seconds", "1"])
             .arg("--db")
             .arg(&self.db)
             .arg("--bootstrap-token-file")

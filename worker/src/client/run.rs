@@ -1,9 +1,11 @@
 //! The worker loop: lease cells, run the engine on N threads, extend leases of long
-//! cells, submit results in batches, back off while the server is away, and stop
-//! gracefully on SIGTERM / SIGINT (no new leases; running cells finish; queued cells
-//! are released; every result is delivered before exit).
+//! cells, submit results through the outbox (kept until the server answers each
+//! one), back off while the server is away, and stop gracefully on SIGTERM / SIGINT
+//! (no new leases; running cells finish; queued cells are released; every result is
+//! delivered before exit).
 
-use super::api::{Api, LeasedCell, ResultItem};
+use super::api::{Api, ApiError, LeasedCell, ResultItem};
+use super::outbox::Outbox;
 use crate::engine::check::check_cell_with;
 use crate::engine::closed_loop::ClosedLoop;
 use crate::engine::net::{self, Network};
@@ -81,7 +83,9 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
     let mut models: HashMap<String, Network> = HashMap::new();
     // Leases we hold (queued or running), for extension.
     let mut held: HashMap<String, LeasedCell> = HashMap::new();
-    let mut pending: Vec<ResultItem> = Vec::new();
+    // Leased cells whose spec or model could not be fetched yet (the server away).
+    let mut unready: Vec<LeasedCell> = Vec::new();
+    let mut outbox = Outbox::default();
     let mut summary = RunSummary::default();
     let mut lease_seconds = 60.0f64;
     let mut last_extend = Instant::now();
@@ -100,37 +104,33 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
 
         // Collect finished cells.
         while let Ok(d) = done_rx.try_recv() {
-            finished(d, &mut held, &mut pending, &mut summary);
+            finished(d, &mut held, &mut outbox, &mut summary);
         }
 
-        // Deliver results in batches; keep them on a transient failure.
-        if !pending.is_empty() {
-            match api.submit(&opts.name, &pending) {
-                Ok(answers) => {
-                    for a in answers.iter().filter(|a| a.status != "accepted") {
-                        tracing::warn!(lease = %a.lease_id, status = %a.status, "result not accepted");
-                    }
-                    if let Some(f) = ack_log.as_mut() {
-                        log_acknowledged(f, &answers);
-                    }
-                    pending.clear();
-                    backoff = Duration::from_millis(200);
-                }
-                Err(e) if e.is_transient() => {
-                    tracing::warn!("submitting {} results failed, will retry: {e}", pending.len());
-                }
-                Err(e) => {
-                    tracing::error!("the server refused {} results: {e}", pending.len());
-                    pending.clear();
-                }
+        // Deliver results; the outbox keeps each one until the server has answered it.
+        if !outbox.is_empty() {
+            let answers = outbox.deliver(Instant::now(), |items| api.submit(&opts.name, items));
+            for a in answers.iter().filter(|a| a.status != "accepted") {
+                tracing::warn!(lease = %a.lease_id, status = %a.status, "result not accepted");
+            }
+            if let Some(f) = ack_log.as_mut() {
+                log_acknowledged(f, &answers);
+            }
+        }
+
+        // Cells that wait for their spec or model: try again.
+        if !stopping && !unready.is_empty() && Instant::now() >= next_lease_at {
+            for cell in std::mem::take(&mut unready) {
+                start_cell(cell, &api, &queue, &mut held, &mut unready, &mut outbox, &mut loops, &mut models);
             }
         }
 
         // On stop: release what has not started, wait for the running cells.
         if stopping {
             let queued: Vec<Job> = queue.jobs.lock().unwrap().drain(..).collect();
-            if !queued.is_empty() {
-                let ids: Vec<String> = queued.iter().map(|j| j.cell.lease_id.clone()).collect();
+            let mut ids: Vec<String> = queued.iter().map(|j| j.cell.lease_id.clone()).collect();
+            ids.extend(unready.drain(..).map(|c| c.lease_id));
+            if !ids.is_empty() {
                 match api.release(&ids) {
                     Ok(_) => summary.released += ids.len() as u64,
                     Err(e) => tracing::warn!("releasing {} leases failed (they will expire): {e}", ids.len()),
@@ -139,7 +139,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
                     held.remove(id);
                 }
             }
-            if queue.running.load(Ordering::SeqCst) == 0 && held.is_empty() && pending.is_empty() {
+            if queue.running.load(Ordering::SeqCst) == 0 && held.is_empty() && outbox.is_empty() {
                 break;
             }
         }
@@ -159,9 +159,12 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
         }
 
         // Keep about two cells per thread queued or running.
-        let outstanding = queue.jobs.lock().unwrap().len() + queue.running.load(Ordering::SeqCst);
+        let outstanding = queue.jobs.lock().unwrap().len() + queue.running.load(Ordering::SeqCst) + unready.len();
         let want = (2 * threads).saturating_sub(outstanding);
-        if !stopping && want > 0 && Instant::now() >= next_lease_at {
+        // No new leases while results wait for the server: after an outage they go
+        // first, before a lease request sweeps their expired leases and hands their
+        // cells out again.
+        if !stopping && want > 0 && outbox.is_empty() && Instant::now() >= next_lease_at {
             let want = match opts.max_cells {
                 Some(m) => want.min((m - leased_total) as usize),
                 None => want,
@@ -181,21 +184,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
                     }
                     for cell in answer.leases {
                         leased_total += 1;
-                        match closed_loop_for(&api, &cell, &mut loops, &mut models) {
-                            Ok(l) => {
-                                held.insert(cell.lease_id.clone(), cell.clone());
-                                queue.jobs.lock().unwrap().push_back(Job { cell, loop_: l });
-                                queue.ready.notify_one();
-                            }
-                            Err(msg) => {
-                                tracing::error!(cell = %cell.cell_id, "cannot set up the cell: {msg}");
-                                pending.push(ResultItem {
-                                    lease_id: cell.lease_id.clone(),
-                                    result: serde_json::json!({"error": msg}),
-                                    elapsed_ms: None,
-                                });
-                            }
-                        }
+                        start_cell(cell, &api, &queue, &mut held, &mut unready, &mut outbox, &mut loops, &mut models);
                     }
                 }
                 Err(e) => {
@@ -218,7 +207,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
 
         // Wait a little for the next finished cell.
         match done_rx.recv_timeout(Duration::from_millis(100)) {
-            Ok(d) => finished(d, &mut held, &mut pending, &mut summary),
+            Ok(d) => finished(d, &mut held, &mut outbox, &mut summary),
             Err(mpsc::RecvTimeoutError::Timeout) => {}
             Err(mpsc::RecvTimeoutError::Disconnected) => break,
         }
@@ -248,10 +237,67 @@ fn log_acknowledged(f: &mut std::fs::File, answers: &[super::api::ItemAnswer]) {
 }
 
 /// A cell is done: its lease no longer needs extending and its result waits to be sent.
-fn finished(d: Done, held: &mut HashMap<String, LeasedCell>, pending: &mut Vec<ResultItem>, summary: &mut RunSummary) {
+fn finished(d: Done, held: &mut HashMap<String, LeasedCell>, outbox: &mut Outbox, summary: &mut RunSummary) {
     held.remove(&d.lease_id);
     summary.cells += 1;
-    pending.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
+    outbox.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
+}
+
+/// Queue a leased cell for the engine threads once its closed loop is at hand. If
+/// the spec or a model cannot be fetched because the server is away, the cell waits
+/// in `unready` (its lease is still extended) and is tried again; a spec or model
+/// that can never work is reported as the cell's error result.
+#[allow(clippy::too_many_arguments)]
+fn start_cell(
+    cell: LeasedCell,
+    api: &Api,
+    queue: &Queue,
+    held: &mut HashMap<String, LeasedCell>,
+    unready: &mut Vec<LeasedCell>,
+    outbox: &mut Outbox,
+    loops: &mut HashMap<String, Arc<ClosedLoop>>,
+    models: &mut HashMap<String, Network>,
+) {
+    match closed_loop_for(api, &cell, loops, models) {
+        Ok(l) => {
+            held.insert(cell.lease_id.clone(), cell.clone());
+            queue.jobs.lock().unwrap().push_back(Job { cell, loop_: l });
+            queue.ready.notify_one();
+        }
+        Err(SetupError::Transient(msg)) => {
+            tracing::warn!(cell = %cell.cell_id, "cannot set up the cell yet, will retry: {msg}");
+            held.insert(cell.lease_id.clone(), cell.clone());
+            unready.push(cell);
+        }
+        Err(SetupError::Fatal(msg)) => {
+            tracing::error!(cell = %cell.cell_id, "cannot set up the cell: {msg}");
+            held.remove(&cell.lease_id);
+            outbox.push(ResultItem {
+                lease_id: cell.lease_id.clone(),
+                result: serde_json::json!({"error": msg}),
+                elapsed_ms: None,
+            });
+        }
+    }
+}
+
+/// Why a cell's closed loop could not be built.
+enum SetupError {
+    /// The server did not answer (away, overloaded): try again later.
+    Transient(String),
+    /// The stored spec or a model cannot be used: the cell's attempt failed.
+    Fatal(String),
+}
+
+impl SetupError {
+    fn fetching(what: &str, e: ApiError) -> SetupError {
+        let msg = format!("fetching {what}: {e}");
+        if e.is_transient() {
+            SetupError::Transient(msg)
+        } else {
+            SetupError::Fatal(msg)
+        }
+    }
 }
 
 fn engine_thread(q: Arc<Queue>, tx: mpsc::Sender<Done>) {
@@ -306,28 +352,32 @@ fn closed_loop_for(
     cell: &LeasedCell,
     loops: &mut HashMap<String, Arc<ClosedLoop>>,
     models: &mut HashMap<String, Network>,
-) -> Result<Arc<ClosedLoop>, String> {
+) -> Result<Arc<ClosedLoop>, SetupError> {
     if let Some(l) = loops.get(&cell.spec_hash) {
         return Ok(l.clone());
     }
     let text = api
         .get_text(&format!("/api/v1/campaigns/{}/spec", cell.campaign_id))
-        .map_err(|e| format!("fetching the spec: {e}"))?;
-    let spec = parse_spec(&text).map_err(|errs| format!("the stored spec is invalid: {}", errs[0]))?;
+        .map_err(|e| SetupError::fetching("the spec", e))?;
+    let spec =
+        parse_spec(&text).map_err(|errs| SetupError::Fatal(format!("the stored spec is invalid: {}", errs[0])))?;
     let mut nets = Vec::new();
     for r in &spec.networks {
-        let hex = r.strip_prefix("sha256:").ok_or(format!("network '{r}' is not a stored model"))?;
+        let hex = r.strip_prefix("sha256:").ok_or(SetupError::Fatal(format!("network '{r}' is not a stored model")))?;
         if !models.contains_key(hex) {
-            let bytes = api.get_bytes(&format!("/api/v1/models/{hex}")).map_err(|e| format!("fetching model {hex}: {e}"))?;
+            let bytes = api
+                .get_bytes(&format!("/api/v1/models/{hex}"))
+                .map_err(|e| SetupError::fetching(&format!("model {hex}"), e))?;
             if net::sha256_hex(&bytes) != hex {
-                return Err(format!("model {hex}: downloaded bytes do not match the hash"));
+                return Err(SetupError::Fatal(format!("model {hex}: downloaded bytes do not match the hash")));
             }
-            let n = net::load_onnx(&bytes).map_err(|e| format!("model {hex}: {e}"))?;
+            let n = net::load_onnx(&bytes).map_err(|e| SetupError::Fatal(format!("model {hex}: {e}")))?;
             models.insert(hex.to_string(), n);
         }
         nets.push(models[hex].clone());
     }
-    let l = Arc::new(ClosedLoop::new(spec, nets).map_err(|e| e.to_string())?);
+    let l = Arc::new(ClosedLoop::new(spec, nets).map_err(|e| SetupError::Fatal(e.to_string()))?);
+    tracing::info!(campaign = %cell.campaign_id, spec = %cell.spec_hash, "spec and models loaded");
     loops.insert(cell.spec_hash.clone(), l.clone());
     Ok(l)
 }
