@@ -19,7 +19,7 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 use std::sync::Mutex;
 use std::time::Instant;
 use tessera_worker::engine::adversary;
-use tessera_worker::engine::check::check_cell_with;
+use tessera_worker::engine::check::check_cell;
 use tessera_worker::engine::closed_loop::ClosedLoop;
 use tessera_worker::engine::falsify::{self, Candidate, Rng};
 use tessera_worker::engine::interval::Interval;
@@ -70,24 +70,34 @@ struct Engine<'a> {
     cl: &'a ClosedLoop,
     memo: Mutex<HashMap<Key, Decided>>,
     threads: usize,
-    /// The campaign's max depth: above it every cell not proven safe is cut, so (as the
-    /// worker does) the falsifier runs only at this depth.
-    max_depth: u32,
+    /// Per-cell method: `None` runs the spec's options; `Some` runs this cheaper
+    /// configuration first and the spec's only when it is inconclusive.
+    cheap_first: Option<&'a ClosedLoop>,
 }
 
 impl<'a> Engine<'a> {
-    fn new(cl: &'a ClosedLoop, threads: usize, max_depth: u32) -> Self {
-        Engine { cl, memo: Mutex::new(HashMap::new()), threads, max_depth }
-    }
-
-    /// The number of cuts that made `cell` from the envelope.
-    fn depth_of(&self, cell: &[Interval]) -> u32 {
-        let env = self.cl.envelope();
-        self.cl.spec.split.iter().map(|&d| (env[d].width() / cell[d].width()).log2().round().max(0.0) as u32).sum()
+    fn new(cl: &'a ClosedLoop, threads: usize) -> Self {
+        Engine { cl, memo: Mutex::new(HashMap::new()), threads, cheap_first: None }
     }
 
     fn decide_one(&self, cell: &[Interval]) -> Decided {
-        let mut v = check_cell_with(self.cl, cell, self.depth_of(cell) >= self.max_depth);
+        let mut v = match &self.cheap_first {
+            Some(cheap) => {
+                let v = check_cell(cheap, cell);
+                if v.verdict == VerdictKind::Inconclusive {
+                    let mut precise = check_cell(self.cl, cell);
+                    let s = &mut precise.stats;
+                    s.wall_ms += v.stats.wall_ms;
+                    s.plant_ms += v.stats.plant_ms;
+                    s.network_ms += v.stats.network_ms;
+                    s.falsify_ms += v.stats.falsify_ms;
+                    precise
+                } else {
+                    v
+                }
+            }
+            None => check_cell(self.cl, cell),
+        };
         let kind = match v.verdict {
             VerdictKind::Safe => Kind::Safe,
             VerdictKind::Unsafe => Kind::Unsafe,
@@ -357,7 +367,7 @@ fn main() {
         let cl = load(name);
         let max_depth = if quick { cl.spec.max_depth.min(7) } else { cl.spec.max_depth.min(10) };
         eprintln!("[{:>6.0} s] {name}: adaptive campaign to depth {max_depth}", started.elapsed().as_secs_f64());
-        let eng = Engine::new(&cl, threads, max_depth);
+        let eng = Engine::new(&cl, threads);
         let steps = adaptive(&eng, 0, max_depth);
         let (a_safe, a_unsafe, a_cpu) = fractions(&steps);
         let a_curve = curve(&steps);
@@ -483,7 +493,7 @@ fn main() {
         let cells: Vec<Vec<Interval>> = grid(&cl, max_depth.min(6)).into_iter().take(if quick { 16 } else { 48 }).collect();
         let mut walls = Vec::new();
         for t in [1, 2] {
-            let e = Engine::new(&cl, t, max_depth);
+            let e = Engine::new(&cl, t);
             let t0 = Instant::now();
             e.decide(&cells);
             walls.push(t0.elapsed().as_secs_f64());
@@ -501,17 +511,23 @@ fn main() {
         // Which step bought what: the engine as it was (zonotopes, open decisions cut
         // into boxes), then the steps of the proof-power work switched on in turn.
         // (Optimised ReLU slopes, step 2 of that work, are not built.)
-        let options: Vec<(&str, EngineOptions)> = vec![
-            ("before: zonotopes, open decisions cut into boxes, random falsifier", with(&|o| { o.set = SetKind::Affine; o.adversary = false })),
-            ("1 + 3: decisions as constraints, shapes kept across periods", with(&|o| { o.set = SetKind::Constrained; o.repeat_check = false; o.adversary = false })),
-            ("4: + branches that repeat end", with(&|o| { o.set = SetKind::Constrained; o.repeat_check = true; o.adversary = false })),
-            ("5: + adversarial falsifier", with(&|o| { o.set = SetKind::Constrained; o.repeat_check = true; o.adversary = true })),
+        let options: Vec<(&str, EngineOptions, Option<EngineOptions>)> = vec![
+            ("before: zonotopes, open decisions cut into boxes, random falsifier", with(&|o| { o.set = SetKind::Affine; o.adversary = false }), None),
+            ("1 + 3: decisions as constraints, shapes kept across periods", with(&|o| { o.set = SetKind::Constrained; o.repeat_check = false; o.adversary = false }), None),
+            ("4: + branches that repeat end", with(&|o| { o.set = SetKind::Constrained; o.repeat_check = true; o.adversary = false }), None),
+            ("5: + adversarial falsifier", with(&|o| { o.set = SetKind::Constrained; o.repeat_check = true; o.adversary = true }), None),
         ];
-        for (label, opts) in options {
+        for (label, opts, cheap) in options {
             eprintln!("[{:>6.0} s] {name}: option '{label}' to depth {od}", started.elapsed().as_secs_f64());
             let mut c2 = load(name);
             c2.spec.engine = opts;
-            let e = Engine::new(&c2, threads, od);
+            let cheap_cl = cheap.map(|o| {
+                let mut c3 = load(name);
+                c3.spec.engine = o;
+                c3
+            });
+            let mut e = Engine::new(&c2, threads);
+            e.cheap_first = cheap_cl.as_ref();
             let st = adaptive(&e, 0, od);
             let (s, u, cpu) = fractions(&st);
             writeln!(t5, "| {name} | {od} | {label} | {s:.4} | {u:.4} | {} | {cpu:.1} |", st.len()).unwrap();

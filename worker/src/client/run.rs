@@ -6,7 +6,7 @@
 
 use super::api::{Api, ApiError, LeasedCell, ResultItem};
 use super::outbox::Outbox;
-use crate::engine::check::check_cell_with;
+use crate::engine::check::check_cell;
 use crate::engine::closed_loop::ClosedLoop;
 use crate::engine::net::{self, Network};
 use crate::engine::spec::parse_spec;
@@ -331,9 +331,7 @@ fn run_cell(job: &Job) -> serde_json::Value {
         Err(e) => return serde_json::json!({"error": e.to_string()}),
     };
     let l = job.loop_.clone();
-    // A cell that will be cut unless proven safe needs no counterexample search.
-    let falsify = !(l.spec.refine_unsafe && job.cell.depth < l.spec.max_depth);
-    match std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| check_cell_with(&l, &cell, falsify))) {
+    match std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| check_cell(&l, &cell))) {
         Ok(v) => serde_json::to_value(&v).unwrap_or_else(|e| serde_json::json!({"error": e.to_string()})),
         Err(p) => {
             let msg = p

@@ -12,25 +12,11 @@ use std::time::Instant;
 
 /// Decide one cell (a box of initial states, one interval per state).
 pub fn check_cell(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
-    check_cell_with(cl, cell, true)
-}
-
-/// [`check_cell`], with the falsifier only when `falsify` holds. A campaign that cuts
-/// every cell not proven safe (`refine_unsafe` below the max depth) has no use for a
-/// counterexample in a cell it will cut anyway: the worker then skips the search, and
-/// the verdict is "inconclusive" with the proof's reason.
-pub fn check_cell_with(cl: &ClosedLoop, cell: &[Interval], falsify: bool) -> Verdict {
     let started = Instant::now();
     let mut stats = Stats::default();
     let outcome = prove_by_choice(cl, cell, started, &mut stats);
     let mut verdict = match outcome {
         Proof::Safe => bare(VerdictKind::Safe),
-        Proof::Failed(f) if !falsify => Verdict {
-            reason: Some(f.reason),
-            detail: Some(f.detail),
-            split_hint: Some(f.split_hint.unwrap_or_else(|| reach::widest_normalized(cl, cell))),
-            ..bare(VerdictKind::Inconclusive)
-        },
         Proof::Failed(f) => {
             let t_f = Instant::now();
             let mut sims = 0;
