@@ -85,9 +85,13 @@ async fn leaves_match_the_counters_and_the_cell_listing() {
     let (changes, _, _) = all_leaves(&ts, &id, Some(as_of), 1000).await;
     assert!(changes.values().any(|(s, _, _)| s == "split"), "bisected cells are reported as split");
     let mut updated = leaves.clone();
+    // A split row drops the cell if the first read had it as a leaf. It may also name a
+    // cell that never was one there: born after `as_of` and split again since, or split
+    // in the same millisecond as `as_of` (the incremental read includes its bound, so a
+    // change is never missed). The picture after applying must equal a fresh read.
     for (k, v) in changes {
         if v.0 == "split" {
-            assert!(updated.remove(&k).is_some(), "a split cell was a leaf before");
+            updated.remove(&k);
         } else {
             updated.insert(k, v);
         }
