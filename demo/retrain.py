@@ -7,7 +7,7 @@ expert, sizes, epochs and spec constants, read from train.py at run time) but fr
 different random seed. Writes OUT_DIR/SCENARIO/spec.json and its ONNX files; the
 committed demo files are not touched.
 
-Usage: python3 demo/retrain.py SCENARIO SEED OUT_DIR     (SCENARIO: lander or aisle)
+Usage: python3 demo/retrain.py SCENARIO SEED OUT_DIR     (SCENARIO: lander, aisle or heading)
 """
 import os
 import sys
@@ -24,7 +24,7 @@ def main():
     cls.seed = seed
     train.HERE = out  # run_* and write_spec write under train.HERE
     os.makedirs(os.path.join(out, name), exist_ok=True)
-    {"lander": train.run_lander, "aisle": train.run_aisle}[name]()
+    train.RUNS[name]()
 
 
 if __name__ == "__main__":

@@ -1,11 +1,13 @@
 #!/usr/bin/env python3
 """Train the demo controllers and write their specs and ONNX files.
 
-Two scenarios of our own (see demo/README.md):
-  lander  2 states, linear flight with a landing-gear contact, one network, 5 thrust levels
-  aisle   4 states, unicycle kinematics down a warehouse aisle past two staggered crates
-          to a walkway, a bank of 4 networks chosen by the previous command, 4 commands
-          that set a turn rate and a speed
+Three scenarios of our own (see demo/README.md):
+  lander   2 states, linear flight with a landing-gear contact, one network, 5 thrust levels
+  aisle    4 states, unicycle kinematics down a warehouse aisle past two staggered crates
+           to a walkway, a bank of 4 networks chosen by the previous command, 4 commands
+           that set a turn rate and a speed
+  heading  2 states, a vessel's linear first-order yaw response, a bank of 3 networks chosen
+           by the previous command, 3 rudder commands; 30 periods of course keeping
 
 For each scenario an expert rule of our own labels sampled observations; small ReLU
 networks are fitted to the labels with plain numpy backprop and Adam (fixed seeds), then
@@ -13,7 +15,7 @@ exported to ONNX with DOUBLE (float64) tensors: Gemm (transB = 1) and Relu nodes
 The spec files are generated from the same constants, so the normalization and the
 command table the networks were trained with are the ones the spec states.
 
-Run:  python3 demo/train.py            (writes demo/lander/* and demo/aisle/*)
+Run:  python3 demo/train.py [SCENARIO ...]   (default all: writes demo/lander/*, demo/aisle/*, demo/heading/*)
 Importing this module trains nothing: `forward`, the experts and the constants are reusable
 (tests/reference/check_demo_networks.py imports `forward`).
 """
@@ -401,6 +403,124 @@ class Aisle:
 
 
 # ---------------------------------------------------------------------------
+# Scenario "heading"
+# ---------------------------------------------------------------------------
+
+
+class Heading:
+    name = "heading"
+    period = 0.5  # s
+    horizon = 30  # periods: 15 s, about four of the vessel's yaw time constants
+    # First-order yaw model (Nomoto's model, the textbook linear model of a ship's yaw
+    # response; common practice): psi' = r, r' = (K delta - r) / T + w. Our own K and T,
+    # those of a small, sluggish vessel. psi is the heading error (rad, positive to
+    # starboard of the set course), r the yaw rate (rad/s), delta the rudder angle (rad,
+    # positive to starboard: it turns the vessel to starboard).
+    gain_k = 0.4  # 1/s: steady yaw rate per rad of rudder
+    time_t = 4.0  # s: yaw time constant
+    yaw_dist = 0.01  # rad/s^2: waves and wind; held steady it adds w T = 0.04 rad/s of yaw rate
+    # (name, rudder angle rad): hard to port, midships, hard to starboard. Full rudder
+    # gives a steady yaw rate of K * 0.25 = 0.1 rad/s. Three commands, a bank of three.
+    commands = [("port", -0.25), ("midships", 0.0), ("starboard", 0.25)]
+    corridor = 0.25  # rad: leaving |psi| < 0.25 (about 14 degrees) is unsafe
+    max_yaw_rate = 0.15  # rad/s: turning this fast is unsafe
+    obs_names = ["heading_error", "yaw_rate"]
+    noise = [0.008, 0.003]  # rad, rad/s
+    offset = [0.0, 0.0]
+    scale = [0.2, 0.1]
+    hidden = [16, 16]
+    samples = 20000
+    epochs = 30
+    seed = 20265
+    # Expert rule constants (see `expert`).
+    lead = 2.5  # s: the heading predicted this far ahead decides
+    rudder_on = 0.02  # rad of predicted heading error: put the rudder over beyond this ...
+    rudder_off = 0.0  # ... and keep it over until the predicted error crosses this
+    time_budget_s = 20.0  # engine time budget per cell, s (the engine's default)
+
+    @classmethod
+    def obs_exprs(cls):
+        return ["psi", "r"]
+
+    @classmethod
+    def observe(cls, x):
+        return np.asarray(x, dtype=np.float64)[:, :2].copy()
+
+    @classmethod
+    def expert(cls, obs, prev):
+        """Command index for observations [heading error, yaw rate] and the previous
+        command. A bang-bang helmsman with a dead band: predict the heading error
+        `lead` s ahead, s = psi + 2.5 r; rudder hard to port when s > 0.02 rad, hard to
+        starboard when s < -0.02 rad, midships in between. Once over, the rudder stays
+        over until s crosses zero (hysteresis, hence one network per previous command).
+        Near the set course the waves push the vessel out of the dead band again and
+        again, so the rudder goes over, back to midships and over again."""
+        s = obs[:, 0] + cls.lead * obs[:, 1]
+        out = np.where(s > cls.rudder_on, 0, np.where(s < -cls.rudder_on, 2, 1))
+        out = np.where((prev == 0) & (s > cls.rudder_off), 0, out)
+        out = np.where((prev == 2) & (s < -cls.rudder_off), 2, out)
+        return out
+
+    @classmethod
+    def sample_states(cls, rng, n):
+        """Half of the samples over the whole range the vessel can reach, half near the
+        set course, where the rule's three bands lie close together."""
+        m = n // 2
+        wide = np.stack([rng.uniform(-0.3, 0.3, m), rng.uniform(-0.17, 0.17, m)], axis=1)
+        near = np.stack([rng.uniform(-0.08, 0.08, n - m), rng.uniform(-0.04, 0.04, n - m)], axis=1)
+        return np.concatenate([wide, near])
+
+    @classmethod
+    def spec(cls):
+        k, t, c, rmax = cls.gain_k, cls.time_t, cls.corridor, cls.max_yaw_rate
+        return {
+            "version": 1,
+            "name": "heading",
+            "description": (
+                "A small vessel keeps its set course. States: heading error psi (rad, positive to starboard "
+                "of the course) and yaw rate r (rad/s); a first-order yaw model (Nomoto's model, common "
+                f"practice): psi' = r, r' = ({k} delta - r) / {t} + w, with a yaw disturbance w of at most "
+                f"{cls.yaw_dist} rad/s^2 (waves and wind). Three rudder commands: hard to port "
+                f"({cls.commands[0][1]} rad), midships, hard to starboard ({cls.commands[2][1]} rad). The "
+                "network that decides is the one of the previous command (a bank of three). Observations: "
+                f"heading error and yaw rate, each with noise. Unsafe: leaving the corridor |psi| < {c} rad, "
+                f"or a yaw rate of {rmax} rad/s or more. All values are our own choices for this demo."
+            ),
+            "states": [{"name": "psi", "unit": "rad"}, {"name": "r", "unit": "rad/s"}],
+            "inputs": [{"name": "delta", "unit": "rad"}],
+            "disturbances": [{"name": "w", "range": [-cls.yaw_dist, cls.yaw_dist], "unit": "rad/s^2"}],
+            "dynamics": {"psi": "r", "r": f"({k} * delta - r) / {t} + w"},
+            "controller": {
+                "period": cls.period,
+                "latency_periods": 0,
+                "observations": [
+                    {"name": n, "expr": x, "noise": [-z, z]}
+                    for n, x, z in zip(cls.obs_names, cls.obs_exprs(), cls.noise)
+                ],
+                "normalization": {"offset": cls.offset, "scale": cls.scale},
+                "networks": [f"net_{n}.onnx" for n, _ in cls.commands],
+                "selection": {"mode": "previous_command", "network_of_command": list(range(len(cls.commands)))},
+                "decision": "argmax",
+                "commands": [{"name": n, "set": {"delta": d}} for n, d in cls.commands],
+                "initial_command": "midships",
+            },
+            "unsafe": [
+                {"all": [f"psi >= {c}"]},
+                {"all": [f"psi <= -{c}"]},
+                {"all": [f"r >= {rmax}"]},
+                {"all": [f"r <= -{rmax}"]},
+            ],
+            "horizon_periods": cls.horizon,
+            "envelope": {"psi": [-0.2, 0.2], "r": [-0.12, 0.12]},
+            "refinement": {"max_depth": 10, "split": ["psi", "r"]},
+            # The engine's default time budget per cell, stated so that the demo's shorter
+            # budget (5 s, for the other scenarios) does not apply: a 30-period proof of
+            # this chattering loop takes about 4-5 s per cell with today's engine.
+            "engine": {"time_budget_s": cls.time_budget_s},
+        }
+
+
+# ---------------------------------------------------------------------------
 # Driver
 # ---------------------------------------------------------------------------
 
@@ -409,7 +529,7 @@ def normalize(cls, obs):
     return (obs - np.array(cls.offset)) / np.array(cls.scale)
 
 
-SCENARIOS = {"lander": Lander, "aisle": Aisle}
+SCENARIOS = {"lander": Lander, "aisle": Aisle, "heading": Heading}
 
 
 def labelled_sample(cls, rng, n, prev_command):
@@ -448,12 +568,13 @@ def run_lander():
     print(f"lander: network {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
 
 
-def run_aisle():
-    cls = Aisle
+def run_bank(cls):
+    """Train a bank: one network per previous command, each on its own fresh samples."""
     rng = np.random.default_rng(cls.seed)
-    os.makedirs(os.path.join(HERE, "aisle"), exist_ok=True)
+    os.makedirs(os.path.join(HERE, cls.name), exist_ok=True)
     sizes = [len(cls.obs_names)] + cls.hidden + [len(cls.commands)]
-    for c, (cname, _, _) in enumerate(cls.commands):
+    for c, command in enumerate(cls.commands):
+        cname = command[0]
         x_tr, x_te = cls.sample_states(rng, cls.samples), cls.sample_states(rng, 20000)
         o_tr, o_te = cls.observe(x_tr), cls.observe(x_te)
         y_tr = cls.expert(o_tr, np.full(len(o_tr), c))
@@ -463,20 +584,32 @@ def run_aisle():
         acc_te = accuracy(layers, normalize(cls, o_te), y_te)
         export_onnx(
             layers,
-            os.path.join(HERE, "aisle", f"net_{cname}.onnx"),
-            f"demo aisle controller used after command '{cname}': obs {cls.obs_names} normalized",
+            os.path.join(HERE, cls.name, f"net_{cname}.onnx"),
+            f"demo {cls.name} controller used after command '{cname}': obs {cls.obs_names} normalized",
         )
-        print(f"aisle: network after '{cname}' {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
+        print(f"{cls.name}: network after '{cname}' {sizes}: accuracy vs expert train {acc_tr:.4f}, held-out {acc_te:.4f}")
     write_spec(cls)
+
+
+def run_aisle():
+    run_bank(Aisle)
+
+
+def run_heading():
+    run_bank(Heading)
+
+
+RUNS = {"lander": run_lander, "aisle": run_aisle, "heading": run_heading}
 
 
 def main():
     t0 = time.perf_counter()
-    which = sys.argv[1:] or ["lander", "aisle"]
-    if "lander" in which:
-        run_lander()
-    if "aisle" in which:
-        run_aisle()
+    which = sys.argv[1:] or list(RUNS)
+    unknown = [w for w in which if w not in RUNS]
+    if unknown:
+        raise SystemExit(f"unknown scenario(s) {unknown}; known: {list(RUNS)}")
+    for name in which:
+        RUNS[name]()
     print(f"training took {time.perf_counter() - t0:.1f} s")
 
 

@@ -3,7 +3,7 @@
 //! the previous campaign's partition instead of the whole envelope.
 //!
 //!     cargo run --release -p tessera-server --example bench_followup -- \
-//!         [--scenario aisle|lander] [--depth D] [--horizon N] [--seed S] [--threads T]
+//!         [--scenario aisle|lander|heading] [--depth D] [--horizon N] [--seed S] [--threads T]
 //!
 //! Steps, with an in-process server and an in-process worker (T engine threads):
 //! 1. campaign A: the committed demo bank (`demo/SCENARIO/`, read at run time), to the
@@ -49,7 +49,7 @@ fn parse_args() -> anyhow::Result<Args> {
             _ => anyhow::bail!("unknown argument {k}"),
         }
     }
-    anyhow::ensure!(a.scenario == "aisle" || a.scenario == "lander", "--scenario is aisle or lander");
+    anyhow::ensure!(["aisle", "lander", "heading"].contains(&a.scenario.as_str()), "--scenario is aisle, lander or heading");
     Ok(a)
 }
 

@@ -30,6 +30,15 @@ const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[
             ("net_veer_starboard.onnx", include_bytes!("../../demo/aisle/net_veer_starboard.onnx")),
         ],
     ),
+    (
+        "heading",
+        include_str!("../../demo/heading/spec.json"),
+        &[
+            ("net_port.onnx", include_bytes!("../../demo/heading/net_port.onnx")),
+            ("net_midships.onnx", include_bytes!("../../demo/heading/net_midships.onnx")),
+            ("net_starboard.onnx", include_bytes!("../../demo/heading/net_starboard.onnx")),
+        ],
+    ),
 ];
 
 #[derive(clap::Args, Debug, Clone)]

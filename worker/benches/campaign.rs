@@ -4,6 +4,7 @@
 //!
 //!     cargo bench -p tessera-worker --bench campaign            # full run, writes BENCHMARKS.md
 //!     cargo bench -p tessera-worker --bench campaign -- --quick # smaller depths, prints only
+//!     cargo bench -p tessera-worker --bench campaign -- --only heading   # one scenario, prints only
 //!
 //! The campaigns run in process with the engine's own `check_cell` (no server), with the
 //! refinement rule the server applies: largest cells first, an inconclusive cell is cut
@@ -34,10 +35,18 @@ fn load(name: &str) -> ClosedLoop {
     let path = root().join("demo").join(name).join("spec.json");
     let text = std::fs::read_to_string(&path).expect("spec");
     let mut s = tessera_worker::engine::spec::parse_spec(&text).expect("valid spec");
-    // Budgets as the demo sets them.
-    s.engine.node_budget = 600;
-    s.engine.time_budget_s = 5.0;
-    s.engine.falsify_samples = 12;
+    // Budgets as the demo sets them: where the spec's `engine` section leaves them out.
+    let raw: serde_json::Value = serde_json::from_str(&text).expect("spec JSON");
+    let stated = |k: &str| raw["engine"].get(k).is_some();
+    if !stated("node_budget") {
+        s.engine.node_budget = 600;
+    }
+    if !stated("time_budget_s") {
+        s.engine.time_budget_s = 5.0;
+    }
+    if !stated("falsify_samples") {
+        s.engine.falsify_samples = 12;
+    }
     let nets = ClosedLoop::load_networks(&s, path.parent().unwrap()).expect("networks");
     ClosedLoop::new(s, nets).expect("closed loop")
 }
@@ -348,13 +357,24 @@ fn median(v: &mut [f64]) -> f64 {
 }
 
 fn main() {
-    let quick = std::env::args().any(|a| a == "--quick");
+    let args: Vec<String> = std::env::args().collect();
+    let quick = args.iter().any(|a| a == "--quick");
+    // `--only NAME`: one scenario, printed only (BENCHMARKS.md keeps every scenario).
+    let only = args.iter().position(|a| a == "--only").and_then(|i| args.get(i + 1)).cloned();
     let threads = std::thread::available_parallelism().map(|n| n.get()).unwrap_or(1).min(2);
     let mut md = String::new();
     let mc_n = if quick { 20_000 } else { 100_000 };
     let started = Instant::now();
-    writeln!(md, "Command: `cargo bench -p tessera-worker --bench campaign`{}.", if quick { " -- --quick" } else { "" }).unwrap();
-    writeln!(md, "Engine budgets as in the demo (node budget 600, 5 s per cell, 12 falsifier samples); {threads} engine threads; CPU time = sum of per-cell engine times.\n").unwrap();
+    let mut flags: Vec<String> = Vec::new();
+    if quick {
+        flags.push("--quick".into());
+    }
+    if let Some(o) = &only {
+        flags.push(format!("--only {o}"));
+    }
+    let flags = if flags.is_empty() { String::new() } else { format!(" -- {}", flags.join(" ")) };
+    writeln!(md, "Command: `cargo bench -p tessera-worker --bench campaign{flags}`.").unwrap();
+    writeln!(md, "Engine budgets as in the demo (node budget 600, 5 s per cell, 12 falsifier samples, where a spec's `engine` section leaves them out: the heading spec keeps 20 s per cell); {threads} engine threads; CPU time = sum of per-cell engine times.\n").unwrap();
 
     let mut t1 = String::from("### 1. Adaptive bisection against uniform grids\n\n| scenario | max depth | adaptive from the root: safe / unsafe fraction, cells, CPU s | adaptive from a grid of depth S: S: safe, cells, CPU s | grid depths: safe fraction (cells, CPU s) | F | from the root: CPU s to F | from depth S: CPU s to F | best grid: CPU s to F | grid / adaptive (root / S) |\n|---|---|---|---|---|---|---|---|---|---|\n");
     let mut t2 = String::from("### 2. Tightness: Monte Carlo and the sampled ceiling\n\n| scenario | depth | proven safe | unresolved | MC safe (95 % CI), n | proven / MC safe | ceiling (95 % CI), cells | proven / ceiling | counterexample volume (adversary's share) | MC unsafe |\n|---|---|---|---|---|---|---|---|---|---|\n");
@@ -363,7 +383,10 @@ fn main() {
     let mut t6 = String::from("### 6. How close the adversary came to the unsafe set in surviving cells\n\nFor each cell of the ceiling sample that survives, the smallest margin of any explored run: for each unsafe region the largest of its constraint values g(x) (the region needs every g ≤ 0), then the smallest over the regions, so in the units of those constraints. A proof of the cell needs an enclosure at least that tight.\n\n| scenario | depth | surviving cells | 10th percentile | 25th percentile | median | constraints |\n|---|---|---|---|---|---|---|\n");
     let mut t5 = String::from("### 5. Which step bought what (adaptive campaign at a reduced depth)\n\n| scenario | depth | engine | safe | counterexample | cells | CPU s |\n|---|---|---|---|---|---|---|\n");
 
-    for name in ["lander", "aisle"] {
+    for name in ["lander", "aisle", "heading"] {
+        if only.as_deref().is_some_and(|o| o != name) {
+            continue;
+        }
         let cl = load(name);
         let max_depth = if quick { cl.spec.max_depth.min(7) } else { cl.spec.max_depth.min(10) };
         eprintln!("[{:>6.0} s] {name}: adaptive campaign to depth {max_depth}", started.elapsed().as_secs_f64());
@@ -540,7 +563,7 @@ fn main() {
     }
     writeln!(md, "Whole run: {:.0} s wall.", started.elapsed().as_secs_f64()).unwrap();
     println!("{md}");
-    if !quick {
+    if !quick && only.is_none() {
         write_section(&md);
     }
 }

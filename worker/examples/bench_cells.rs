@@ -30,12 +30,21 @@ fn main() {
     let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo");
     println!("| scenario | cell (fraction of envelope per split dim) | cells | safe/unsafe/inconcl. | median ms | p90 ms | plant % | network % | falsify % | decided proof / one simulation |");
     println!("|---|---|---|---|---|---|---|---|---|---|");
-    for name in ["lander", "aisle"] {
-        let mut cl = load(&root.join(name).join("spec.json"));
-        // Budgets as the demo sets them.
-        cl.spec.engine.node_budget = 600;
-        cl.spec.engine.time_budget_s = 5.0;
-        cl.spec.engine.falsify_samples = 12;
+    for name in ["lander", "aisle", "heading"] {
+        let path = root.join(name).join("spec.json");
+        let mut cl = load(&path);
+        // Budgets as the demo sets them: where the spec's `engine` section leaves them out.
+        let raw: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(&path).expect("spec")).expect("spec JSON");
+        let stated = |k: &str| raw["engine"].get(k).is_some();
+        if !stated("node_budget") {
+            cl.spec.engine.node_budget = 600;
+        }
+        if !stated("time_budget_s") {
+            cl.spec.engine.time_budget_s = 5.0;
+        }
+        if !stated("falsify_samples") {
+            cl.spec.engine.falsify_samples = 12;
+        }
         let env = cl.envelope();
         let mut rng = Rng::new(7);
         for frac in [1.0 / 4.0, 1.0 / 16.0, 1.0 / 64.0] {

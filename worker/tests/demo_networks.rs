@@ -32,7 +32,7 @@ fn python_report() -> Value {
     serde_json::from_slice(&out.stdout).expect("the check prints JSON")
 }
 
-const DEMO_SPECS: [&str; 2] = ["demo/aisle/spec.json", "demo/lander/spec.json"];
+const DEMO_SPECS: [&str; 3] = ["demo/aisle/spec.json", "demo/heading/spec.json", "demo/lander/spec.json"];
 
 #[test]
 fn demo_networks_match_numpy_and_their_specs() {
@@ -79,6 +79,9 @@ fn demo_specs_validate_and_reference_existing_files() {
     }
     let aisle = parse_spec(&std::fs::read_to_string(repo_root().join(DEMO_SPECS[0])).unwrap()).unwrap();
     assert_eq!(aisle.network_of_command, vec![0, 1, 2, 3], "the aisle rover uses a bank chosen by the previous command");
+    let heading = parse_spec(&std::fs::read_to_string(repo_root().join(DEMO_SPECS[1])).unwrap()).unwrap();
+    assert_eq!(heading.network_of_command, vec![0, 1, 2], "the heading keeper uses a bank chosen by the previous command");
+    assert!(heading.horizon >= 24, "the heading scenario is the long-horizon one: {} periods", heading.horizon);
 }
 
 /// Runs `demo/simulate.py` (fixed seed) and returns the printed (safe, unsafe) fractions.

@@ -1,5 +1,6 @@
 //! The demo scenarios exercise every kind of verdict, "safe" is checked outside the
-//! engine, and the aisle rover's bank really switches networks.
+//! engine, and the banks of the aisle rover and of the heading keeper really switch
+//! networks.
 //!
 //! For each committed scenario (`demo/*/spec.json`), a row of cells at a moderate depth is
 //! decided by the engine (proof, then falsifier). Checked:
@@ -16,7 +17,9 @@
 //!   trajectory out of the unsafe set over the whole horizon. An unsound "safe" fails
 //!   here even if the engine's own simulation shared its error;
 //! - along the aisle rover's trajectories the network in charge changes (the bank is
-//!   used), with onnxruntime agreeing on every decision.
+//!   used), with onnxruntime agreeing on every decision;
+//! - the heading keeper's runs over its 30 periods chatter: the rudder goes over and back
+//!   again and again, through all three networks of its bank.
 
 use serde_json::{json, Value};
 use std::collections::BTreeSet;
@@ -225,4 +228,40 @@ fn aisle_cells_of_every_kind_and_the_bank_switches() {
     println!("aisle: {} replayed runs, {} switch networks, networks used {:?}", o.replays.len(), switching_runs, used);
     assert!(switching_runs > 0, "no aisle run switched networks");
     assert!(used.len() >= 3, "aisle runs used only networks {used:?} of {}", cl.spec.commands.len());
+}
+
+#[test]
+fn heading_cells_of_every_kind_over_the_long_horizon() {
+    let (cl, _) = load("demo/heading/spec.json");
+    assert!(cl.spec.horizon >= 24, "the heading scenario is the long-horizon one");
+    // Depth 8 (16 × 16 cells over psi and r): one heading band to starboard of the course
+    // (psi ∈ [0.125, 0.15] rad) at three yaw rates turning further away from it
+    // (r ∈ [0.045, 0.09] rad/s). The slowest turn is recovered (the engine proves it safe
+    // over the whole 30 periods), the fastest leaves the corridor, and the middle cell
+    // straddles the boundary between them.
+    let turning_away: Vec<usize> = (11..14).collect();
+    let cells = grid(&cl.envelope(), &[16, 16], &[Some(&[13]), Some(&turning_away)]);
+    let (cl, o) = decide_row("demo/heading/spec.json", &cells);
+    println!("heading: {} cells: {} safe, {} unsafe, {} inconclusive", cells.len(), o.safe, o.unsafe_, o.inconclusive);
+    assert!(o.safe > 0 && o.unsafe_ > 0 && o.inconclusive > 0, "heading: safe {} unsafe {} inconclusive {}", o.safe, o.unsafe_, o.inconclusive);
+    // The runs replayed from the safe cell (30 periods each, every one after a
+    // counterexample's shorter run): the network in charge is the previous command's, so
+    // a network switch is a rudder command change.
+    let full: Vec<Vec<u64>> = o
+        .replays
+        .iter()
+        .map(|r| r["networks"].as_array().unwrap().iter().map(|v| v.as_u64().unwrap()).collect::<Vec<u64>>())
+        .filter(|n| n.len() == cl.spec.horizon as usize)
+        .collect();
+    assert!(!full.is_empty(), "no full-horizon heading run was replayed");
+    let mut used = BTreeSet::new();
+    let mut counts = Vec::new();
+    for nets in &full {
+        used.extend(nets.iter().copied());
+        let switches = nets.windows(2).filter(|w| w[0] != w[1]).count();
+        assert!(switches >= 4, "a heading run switched networks only {switches} times in 30 periods: {nets:?}");
+        counts.push(switches);
+    }
+    println!("heading: {} full-horizon runs replayed, network switches {:?}, networks used {:?}", full.len(), counts, used);
+    assert_eq!(used.len(), 3, "heading runs used only networks {used:?}");
 }
