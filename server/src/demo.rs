@@ -41,6 +41,10 @@ const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[
     ),
 ];
 
+/// The scenarios a plain `demo` runs: a few minutes on two cores. The heading keeper's
+/// 30-period proofs take seconds per cell, so it runs only when named in `--only`.
+const DEFAULT_SCENARIOS: &[&str] = &["lander", "aisle"];
+
 #[derive(clap::Args, Debug, Clone)]
 pub struct DemoOptions {
     /// Working folder for the SQLite file, tokens, worker logs and the scenario files.
@@ -58,7 +62,8 @@ pub struct DemoOptions {
     /// Cap on the scenarios' refinement depth, so the demo ends in minutes.
     #[arg(long, default_value_t = 10)]
     pub max_depth: u32,
-    /// Which scenarios to run (default: all).
+    /// Which scenarios to run (default: lander and aisle; heading, the long-horizon
+    /// scenario, takes longer and runs when named).
     #[arg(long, value_delimiter = ',')]
     pub only: Vec<String>,
     /// End with status 0 once every campaign is done, after one line per campaign
@@ -79,6 +84,10 @@ fn demo_engine_knobs(spec: &mut Value) {
 }
 
 pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
+    if let Some(unknown) = opts.only.iter().find(|o| !SCENARIOS.iter().any(|(name, _, _)| name == o)) {
+        let known: Vec<&str> = SCENARIOS.iter().map(|(name, _, _)| *name).collect();
+        anyhow::bail!("--only: no demo scenario named '{unknown}' (there are: {})", known.join(", "));
+    }
     std::fs::create_dir_all(&opts.dir)?;
     write_scenarios(&opts.dir)?;
     let mut config = Config::for_tests(opts.dir.join("tessera.sqlite"));
@@ -94,7 +103,8 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     let existing = campaigns::list(&store, None).await.map_err(|e| anyhow::anyhow!(e.detail))?;
     let mut ids: Vec<(String, String)> = Vec::new();
     for (name, spec_text, files) in SCENARIOS {
-        if !opts.only.is_empty() && !opts.only.iter().any(|o| o == name) {
+        let wanted = if opts.only.is_empty() { DEFAULT_SCENARIOS.contains(name) } else { opts.only.iter().any(|o| o == name) };
+        if !wanted {
             continue;
         }
         if let Some(c) = existing["campaigns"].as_array().and_then(|a| a.iter().find(|c| c["name"] == *name)) {
