@@ -232,9 +232,9 @@ pub struct EngineOptions {
     /// End branches whose set lies inside a polytope an earlier period held with the
     /// same future (constrained sets only). Default true.
     pub repeat_check: bool,
-    /// With `constrained` sets: try boxes with interval network bounds first; when they
-    /// fail before 40 % of the horizon, run the falsifier before the constrained sets,
-    /// which then try only if it finds nothing. Default true.
+    /// With `constrained` sets: try boxes with interval network bounds first, and the
+    /// constrained sets only when boxes do not prove the cell but reach 40 % of the
+    /// horizon. Default true.
     pub cheap_first: bool,
     /// After random and extreme runs, let the adversary search every command the noise
     /// allows for a counterexample. Default true.
