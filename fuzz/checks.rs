@@ -1,6 +1,6 @@
 //! What each fuzz target checks, shared by the fuzz targets (`fuzz/fuzz_targets/`) and
 //! the regression tests that replay every input the fuzzer ever found failing
-//! (`worker/tests/fuzz_regressions.rs`). Each check panics on a violation.
+//! (`worker/tests/it/fuzz_regressions.rs`). Each check panics on a violation.
 
 use tessera_worker::engine::expr;
 use tessera_worker::engine::interval::Interval;

@@ -51,7 +51,7 @@ def main():
         "fixed_batch.onnx": (3, 16, 5, 1, False),
         "symbolic_batch.onnx": (2, 8, 4, "N", False),
         "inits_as_inputs.onnx": (4, 8, 3, 1, True),
-        # For the two-tank spec of worker/tests/spec_cli.rs (2 observations, 2 commands).
+        # For the two-tank spec of worker/tests/it/spec_cli.rs (2 observations, 2 commands).
         "pump_2_outputs.onnx": (2, 8, 2, 1, False),
         "pump_3_outputs.onnx": (2, 8, 3, 1, False),
     }.items():

@@ -23,3 +23,39 @@ impl Drop for Server {
         let _ = self.0.wait();
     }
 }
+
+/// The one-state tank of our own that the fault and load tests campaign on:
+/// `h' = q − 0.1 h`, a two-output network deciding between `off` (q = 0) and `on`
+/// (q = 0.2) from the level, unsafe above 1.5 m, 20 periods of 0.5 s from h ∈ [0, 1],
+/// bisected on h to depth 6 with counterexample cells refined. Tests change the fields
+/// their scenario needs (`spec["horizon_periods"] = json!(24)`).
+pub fn tank_spec(name: &str, model_sha: &str) -> serde_json::Value {
+    serde_json::json!({
+        "name": name,
+        "states": [{"name": "h", "unit": "m"}],
+        "inputs": [{"name": "q", "unit": "m/s"}],
+        "dynamics": {"h": "q - 0.1 * h"},
+        "controller": {
+            "period": 0.5,
+            "observations": [{"name": "level", "expr": "h"}],
+            "networks": [format!("sha256:{model_sha}")],
+            "selection": {"mode": "single"},
+            "decision": "argmax",
+            "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 0.2}}],
+            "initial_command": "off"
+        },
+        "unsafe": [{"all": ["h >= 1.5"]}],
+        "horizon_periods": 20,
+        "envelope": {"h": [0.0, 1.0]},
+        "refinement": {"max_depth": 6, "split": ["h"], "refine_unsafe": true}
+    })
+}
+
+/// Held by each slow end-to-end test (many processes, kills, timing of their own) for
+/// its whole run, so that no two of them share the machine: the suite is one test
+/// binary whose tests otherwise run side by side. Listed in DEVELOPERS.md ("Testing").
+pub fn slow_test() -> std::sync::MutexGuard<'static, ()> {
+    static SLOW: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    // A test that failed while holding the lock must not fail the others.
+    SLOW.lock().unwrap_or_else(|e| e.into_inner())
+}

@@ -22,7 +22,7 @@
 //! bound that the result's own `Bounder` gives for `v·x` must not be below linprog's
 //! value. Run with `--nocapture` to see how close the samples come to the supports.
 
-mod common;
+use crate::common;
 
 use common::Rng;
 use serde_json::{json, Value};

@@ -7,7 +7,7 @@
 //! backward pass (before its intersection with interval bounds, which would hide it)
 //! is checked too.
 
-mod common;
+use crate::common;
 
 use common::Rng;
 use ndarray::{Array1, Array2};

@@ -310,7 +310,7 @@ fn results_for_ended_leases_or_other_cells_are_refused_and_not_counted() {
 
     // B's lease expires (1 s leases, swept every second) and B's root is leased
     // again: the late result of the first lease is refused (a late result whose cell
-    // nobody took meanwhile would count; server/tests/campaign.rs tests that).
+    // nobody took meanwhile would count; server/tests/it/campaign.rs tests that).
     std::thread::sleep(Duration::from_millis(2500));
     let leases = lease();
     let lb2 = leases.iter().find(|l| l["campaign_id"] == b.as_str()).expect("B's root is leased again").clone();

@@ -282,6 +282,7 @@ fn verdict(cell: &Value, max_depth: i64, tally: &mut Tally) -> Value {
 
 #[test]
 fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
+    let _slow = tessera_tests::slow_test();
     let chromium = chromium_path(); // fail first, and clearly, when the browser is missing
     let t0 = Instant::now();
     let rt = tokio::runtime::Runtime::new().expect("runtime");
@@ -512,6 +513,7 @@ fn drive_all(api: &Api, work: &str, rule: fn(f64, f64, f64, f64) -> &'static str
 /// change as the server's diff lists, with a legend and the table of transitions.
 #[test]
 fn dashboard_draws_the_changes_of_a_follow_up() {
+    let _slow = tessera_tests::slow_test();
     let _chromium = chromium_path();
     let rt = tokio::runtime::Runtime::new().expect("runtime");
     let dir = tempfile::tempdir().expect("temp dir");
@@ -599,13 +601,14 @@ fn dashboard_draws_the_changes_of_a_follow_up() {
     rt.block_on(server.stop()).expect("server stops");
 }
 
-/// Benchmark, not run by default (`cargo test -p tessera-tests --test dashboard_browser
+/// Benchmark, not run by default (`cargo test -p tessera-tests --test it dashboard_browser::
 /// -- --ignored --nocapture`): the campaign page with about 100,000 leaf cells. Prints
 /// how long the page took to fetch and draw the map and to answer a hover; fails only
 /// if the map does not show every leaf.
 #[test]
 #[ignore]
 fn benchmark_dashboard_with_100k_cells() {
+    let _slow = tessera_tests::slow_test();
     let _ = chromium_path();
     let rt = tokio::runtime::Runtime::new().expect("runtime");
     let dir = tempfile::tempdir().expect("temp dir");

@@ -23,7 +23,7 @@
 //!
 //! Run with `--nocapture` for the observed gaps.
 
-mod common;
+use crate::common;
 
 use common::Rng;
 use serde_json::{json, Value};

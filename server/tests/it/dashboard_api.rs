@@ -3,7 +3,7 @@
 //! against the server's own exact counters and against the cell listing, two views
 //! computed by other code paths.
 
-mod common;
+use crate::common;
 use common::*;
 use serde_json::Value;
 use std::collections::HashMap;

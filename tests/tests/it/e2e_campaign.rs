@@ -52,6 +52,7 @@ fn write_small_lander(dir: &Path) -> PathBuf {
 
 #[test]
 fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
+    let _slow = tessera_tests::slow_test();
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path();
     let spec_path = write_small_lander(dir);

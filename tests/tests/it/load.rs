@@ -14,7 +14,7 @@
 //! `load_short` (in the test suite) runs 50 clients for 5 s and asserts only those
 //! facts, never timings. The benchmark, which prints latency percentiles per request
 //! kind and the server's peak resident memory (VmHWM from /proc), is
-//! `cargo test --release -p tessera-tests --test load -- --ignored --nocapture`
+//! `cargo test --release -p tessera-tests --test it load:: -- --ignored --nocapture`
 //! (200 clients, 60 s; `TESSERA_LOAD_CLIENTS` and `TESSERA_LOAD_SECONDS` override).
 
 use serde_json::{json, Value};
@@ -241,27 +241,11 @@ fn run_load(clients: usize, seconds: f64) {
         .into_json()
         .unwrap();
     let sha = up["sha256"].as_str().unwrap();
-    let spec = json!({
-        "name": "load-tank",
-        "states": [{"name": "h", "unit": "m"}],
-        "inputs": [{"name": "q", "unit": "m/s"}],
-        "dynamics": {"h": "q - 0.1 * h"},
-        "controller": {
-            "period": 0.5,
-            "observations": [{"name": "level", "expr": "h"}],
-            "networks": [format!("sha256:{sha}")],
-            "selection": {"mode": "single"},
-            "decision": "argmax",
-            "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 0.2}}],
-            "initial_command": "off"
-        },
-        "unsafe": [{"all": ["h >= 2"]}],
-        "horizon_periods": 20,
-        "envelope": {"h": [0.0, 1.0]},
-        // Deep enough that [0.5, 0.9] is still being bisected when the run ends; cells
-        // with a counterexample stay leaves, as when the recorded figures were measured.
-        "refinement": {"max_depth": 40, "split": ["h"], "refine_unsafe": false}
-    });
+    let mut spec = tessera_tests::tank_spec("load-tank", sha);
+    spec["unsafe"] = json!([{"all": ["h >= 2"]}]);
+    // Deep enough that [0.5, 0.9] is still being bisected when the run ends; cells
+    // with a counterexample stay leaves, as when the recorded figures were measured.
+    spec["refinement"] = json!({"max_depth": 40, "split": ["h"], "refine_unsafe": false});
     let created: Value = ureq::post(&format!("{url}/api/v1/campaigns"))
         .set("Authorization", &format!("Bearer {admin}"))
         .send_json(spec)
@@ -329,12 +313,14 @@ fn run_load(clients: usize, seconds: f64) {
 
 #[test]
 fn load_short() {
+    let _slow = tessera_tests::slow_test();
     run_load(50, 5.0);
 }
 
 #[test]
 #[ignore = "benchmark: 200 clients for 60 s; run with --ignored --nocapture"]
 fn load_benchmark() {
+    let _slow = tessera_tests::slow_test();
     let env = |k: &str, d: f64| std::env::var(k).ok().and_then(|v| v.parse().ok()).unwrap_or(d);
     run_load(env("TESSERA_LOAD_CLIENTS", 200.0) as usize, env("TESSERA_LOAD_SECONDS", 60.0));
 }

@@ -2170,6 +2170,7 @@ fn expand(word: &str, vars: &BTreeMap<String, String>) -> String {
 /// stops the worker with SIGTERM and expects exit 0.
 #[test]
 fn deployed_command_lines_start_a_real_server_and_worker() {
+    let _slow = tessera_tests::slow_test();
     let tmp = tempfile::tempdir().unwrap();
     let port = std::net::TcpListener::bind("127.0.0.1:0")
         .unwrap()

@@ -2,7 +2,7 @@
 //! standard): models built with the `onnx` helper API by
 //! `tests/reference/onnx_cases.py`, evaluated by onnxruntime on random inputs.
 
-mod common;
+use crate::common;
 
 use serde_json::Value;
 use tessera_worker::engine::net::{load_onnx, Layer, Network};

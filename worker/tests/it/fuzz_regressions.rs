@@ -4,7 +4,7 @@
 //! fault. A watchdog fails the test, rather than hanging the suite, if an input that
 //! once hung does so again.
 
-#[path = "../../fuzz/checks.rs"]
+#[path = "../../../fuzz/checks.rs"]
 mod checks;
 
 use std::path::Path;

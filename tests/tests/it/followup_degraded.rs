@@ -94,6 +94,7 @@ fn overlap(a: &[[f64; 2]], b: &[[f64; 2]], env: &[[f64; 2]]) -> f64 {
 
 #[test]
 fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
+    let _slow = tessera_tests::slow_test();
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path();
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo/lander");

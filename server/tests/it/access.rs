@@ -8,7 +8,7 @@
 //! its `sha2` crate), whose SHA-256 is first checked against the FIPS 180-4 example
 //! "abc" (NIST's published example values). The test fails, never skips, without python3.
 
-mod common;
+use crate::common;
 use common::*;
 use serde_json::json;
 use std::io::Write;

@@ -11,7 +11,7 @@
 //!                + [7/8, 15/16]                                 = 8/16 = 1/2
 //! (the depth-4 cells are at max_depth, where inconclusive becomes unresolved).
 
-mod common;
+use crate::common;
 use common::*;
 use serde_json::{json, Value};
 use tessera_server::auth::Role;

@@ -23,7 +23,7 @@
 //! test also requires that the parts' constraints exclude most sampled points whose
 //! command is a different one.
 
-mod common;
+use crate::common;
 
 use common::Rng;
 use serde_json::{json, Value};

@@ -19,7 +19,7 @@
 //! caught. The test also checks that onnxruntime and `Network::eval` agree within the
 //! same bound (the loaded network is the one onnxruntime ran).
 
-mod common;
+use crate::common;
 
 use ndarray::{Array1, Array2};
 use serde_json::Value;

@@ -1,7 +1,7 @@
 //! The `tessera-worker bounds` command: JSON shape, agreement with the library, and
 //! exit code 2 with a message (never a panic) on bad input.
 
-mod common;
+use crate::common;
 
 use serde_json::Value;
 use std::process::Command;

@@ -4,8 +4,7 @@
 //! Margin: the closed forms are evaluated in f64, whose error is a few ulps of values
 //! below 100 (< 1e-13); we allow 1e-12 per coordinate and nothing more.
 
-mod plant_common;
-use plant_common as common;
+use crate::plant_common as common;
 
 use common::*;
 use tessera_worker::engine::interval::Interval;

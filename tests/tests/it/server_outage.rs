@@ -82,30 +82,16 @@ fn tail(log: &Path) -> String {
 }
 
 fn spec(model_sha: &str) -> Value {
-    json!({
-        "name": "outage-tank",
-        "states": [{"name": "h", "unit": "m"}],
-        "inputs": [{"name": "q", "unit": "m/s"}],
-        "dynamics": {"h": "q - 0.1 * h"},
-        "controller": {
-            "period": 0.5,
-            "observations": [{"name": "level", "expr": "h"}],
-            "networks": [format!("sha256:{model_sha}")],
-            "selection": {"mode": "single"},
-            "decision": "argmax",
-            "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 0.2}}],
-            "initial_command": "off"
-        },
-        "unsafe": [{"all": ["h >= 1.5"]}],
-        "horizon_periods": 24,
-        "envelope": {"h": [0.7, 1.0]},
-        "refinement": {"max_depth": 6, "split": ["h"], "refine_unsafe": true},
-        "engine": {"sim_steps": 150}
-    })
+    let mut spec = tessera_tests::tank_spec("outage-tank", model_sha);
+    spec["horizon_periods"] = json!(24);
+    spec["envelope"] = json!({"h": [0.7, 1.0]});
+    spec["engine"] = json!({"sim_steps": 150});
+    spec
 }
 
 #[test]
 fn results_cross_an_outage_longer_than_the_lease_and_larger_than_a_request() {
+    let _slow = tessera_tests::slow_test();
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path().to_path_buf();
     let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();

@@ -25,7 +25,7 @@
 //!   see `--nocapture`). No other tightness is asserted: the relaxation is allowed to be
 //!   loose; the median gap is printed.
 
-mod common;
+use crate::common;
 
 use ndarray::Array2;
 use serde_json::Value;

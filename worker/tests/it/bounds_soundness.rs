@@ -7,7 +7,7 @@
 //!
 //! Run with `--nocapture` to see the mean width ratio symbolic / interval.
 
-mod common;
+use crate::common;
 
 use common::Rng;
 use ndarray::{Array1, Array2};

@@ -7,8 +7,7 @@
 //! `MARGIN = 1e-10` per coordinate and assert that the estimate is below a quarter of
 //! it, so nothing beyond the reference's accuracy is granted.
 
-mod plant_common;
-use plant_common as common;
+use crate::plant_common as common;
 
 use common::*;
 use serde_json::{json, Value};

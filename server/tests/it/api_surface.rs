@@ -1,7 +1,7 @@
 //! The API surface: the role matrix over every route, the OpenAPI document against
 //! the routes served, and bad input answered with 4xx JSON errors.
 
-mod common;
+use crate::common;
 use common::*;
 use serde_json::{json, Value};
 use std::collections::BTreeSet;

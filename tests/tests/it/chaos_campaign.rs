@@ -154,29 +154,14 @@ fn write_model(dir: &Path) -> Vec<u8> {
 }
 
 fn tank_spec(model_sha: &str) -> Value {
-    json!({
-        "name": "chaos-tank",
-        "states": [{"name": "h", "unit": "m"}],
-        "inputs": [{"name": "q", "unit": "m/s"}],
-        "dynamics": {"h": "q - 0.1 * h"},
-        "controller": {
-            "period": 0.5,
-            "observations": [{"name": "level", "expr": "h"}],
-            "networks": [format!("sha256:{model_sha}")],
-            "selection": {"mode": "single"},
-            "decision": "argmax",
-            "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 0.2}}],
-            "initial_command": "off"
-        },
-        "unsafe": [{"all": ["h >= 1.5"]}],
-        "horizon_periods": 20,
-        "envelope": {"h": [0.0, 1.0]},
-        "refinement": {"max_depth": MAX_DEPTH, "split": ["h"], "refine_unsafe": true}
-    })
+    let mut spec = tessera_tests::tank_spec("chaos-tank", model_sha);
+    spec["refinement"]["max_depth"] = json!(MAX_DEPTH);
+    spec
 }
 
 #[test]
 fn campaign_survives_worker_and_server_kills_and_loses_nothing() {
+    let _slow = tessera_tests::slow_test();
     let seed: u64 = std::env::var("TESSERA_CHAOS_SEED").ok().and_then(|s| s.parse().ok()).unwrap_or(20261202);
     let tmp = tempfile::tempdir().unwrap();
     let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();

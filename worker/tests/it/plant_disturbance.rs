@@ -1,7 +1,6 @@
 //! Time-varying disturbances, the spec constructor, and failures as ordinary results.
 
-mod plant_common;
-use plant_common as common;
+use crate::plant_common as common;
 
 use common::*;
 use tessera_worker::engine::affine::StateSet;

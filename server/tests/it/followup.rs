@@ -18,7 +18,7 @@
 //!   safe→unsafe 1/4, safe→safe 1/4, unresolved→safe 1/4, unresolved→unresolved 1/8,
 //!   unsafe→safe 1/16, unsafe→unsafe 1/16 (sum 1), after 11 results.
 
-mod common;
+use crate::common;
 use common::*;
 use serde_json::{json, Value};
 use std::collections::BTreeMap;
