@@ -9,69 +9,12 @@
 
 use crate::common;
 
-use common::Rng;
+use common::{eval_with_error, Rng, U64};
 use ndarray::{Array1, Array2};
 use tessera_worker::engine::interval::Interval;
 use tessera_worker::engine::net::bounds::raw_symbolic_bounds;
 use tessera_worker::engine::net::{output_bounds, Layer, Network, OutputBounds};
 use tessera_worker::engine::spec::BoundsMethod;
-
-const U64: f64 = 1.0 / 9_007_199_254_740_992.0; // 2⁻⁵³
-
-fn gamma(n: usize) -> f64 {
-    let nu = n as f64 * U64;
-    nu / (1.0 - nu)
-}
-
-/// `net.eval(x)` and, per output, a bound `e` with `|eval − exact| ≤ e`, where `exact`
-/// is the real-arithmetic network value at `x`. Forward error analysis: for a dense
-/// layer with `n` inputs the computed `W·â + b` (any summation order, FMA or not)
-/// differs from `W·a + b` by at most `|W|·e + γ_{n+1}·(|W|·|â| + |b|)` (the standard
-/// dot-product bound, one more rounding for the bias); `|â| ≤ |a_here| + 2e` bounds the
-/// magnitudes whatever order `eval` used. ReLU is exact and 1-Lipschitz; tanh is
-/// 1-Lipschitz and sigmoid 1/4-Lipschitz, with 8 ulps allowed for libm's exp/tanh and
-/// the divide (glibc documents errors of 1–2 ulps; common practice). The estimate's own
-/// rounding is covered by a factor (1 + 1e-10), negligible next to it.
-fn eval_with_error(net: &Network, x: &[f64]) -> (Vec<f64>, Vec<f64>) {
-    let mut a = x.to_vec();
-    let mut e = vec![0.0; x.len()];
-    for layer in net.layers() {
-        match layer {
-            Layer::Dense { w, b } => {
-                let n = w.ncols();
-                let g = gamma(n + 1);
-                let (mut na, mut ne) = (vec![0.0; w.nrows()], vec![0.0; w.nrows()]);
-                for i in 0..w.nrows() {
-                    let (mut s, mut mag, mut prop) = (b[i], b[i].abs(), 0.0);
-                    for j in 0..n {
-                        s += w[[i, j]] * a[j];
-                        mag += w[[i, j]].abs() * (a[j].abs() + 2.0 * e[j]);
-                        prop += w[[i, j]].abs() * e[j];
-                    }
-                    na[i] = s;
-                    ne[i] = prop + g * mag;
-                }
-                a = na;
-                e = ne;
-            }
-            Layer::Relu => a.iter_mut().for_each(|v| *v = v.max(0.0)),
-            Layer::Sigmoid => {
-                for i in 0..a.len() {
-                    a[i] = 1.0 / (1.0 + (-a[i]).exp());
-                    e[i] = 0.25 * e[i] + 8.0 * U64 * 2.0 * a[i].abs();
-                }
-            }
-            Layer::Tanh => {
-                for i in 0..a.len() {
-                    a[i] = a[i].tanh();
-                    e[i] += 8.0 * U64 * 2.0 * a[i].abs();
-                }
-            }
-        }
-    }
-    let y = net.eval(x);
-    (y, e.iter().map(|v| v * (1.0 + 1e-10) + 1e-300).collect())
-}
 
 /// A random network with the given widths; ReLU between dense layers (or the given
 /// activation), weights ~ N(0, 2/fan_in), biases ~ N(0, 0.3²); optionally rounded to

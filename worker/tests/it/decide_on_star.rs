@@ -25,9 +25,9 @@
 
 use crate::common;
 
-use common::Rng;
+use common::{read_f64s, write_f64s, Rng};
 use serde_json::{json, Value};
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use tessera_worker::engine::affine::StateSet;
 use tessera_worker::engine::closed_loop::ClosedLoop;
 use tessera_worker::engine::interval::Interval;
@@ -155,14 +155,6 @@ fn picked(y: &[f64], decision: Decision) -> (usize, f64) {
     (best, margin)
 }
 
-fn write_f64s(path: &Path, v: &[f64]) {
-    let bytes: Vec<u8> = v.iter().flat_map(|x| x.to_le_bytes()).collect();
-    std::fs::write(path, bytes).unwrap();
-}
-
-fn read_f64s(path: &Path) -> Vec<f64> {
-    std::fs::read(path).unwrap().chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().unwrap())).collect()
-}
 
 /// Random constraints on the cell's symbols that keep a random anchor point inside.
 fn cell_constraints(rng: &mut Rng, n: usize) -> Vec<Halfspace> {

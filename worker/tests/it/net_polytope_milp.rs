@@ -26,6 +26,7 @@
 //!   loose; the median gap is printed.
 
 use crate::common;
+use common::floats;
 
 use ndarray::Array2;
 use serde_json::Value;
@@ -36,9 +37,6 @@ use tessera_worker::engine::net::{load_onnx, output_bounds};
 use tessera_worker::engine::spec::BoundsMethod;
 use tessera_worker::engine::star::{Halfspace, Star};
 
-fn floats(v: &Value) -> Vec<f64> {
-    v.as_array().expect("array").iter().map(|x| x.as_f64().expect("number")).collect()
-}
 
 /// `b ≤ q` for an f64 `b` and the exact rational `q` given as (smallest f64 ≥ q, exact?).
 fn at_most(b: f64, upper: f64, exact: bool) -> bool {

@@ -3,6 +3,7 @@
 //! `tests/reference/onnx_cases.py`, evaluated by onnxruntime on random inputs.
 
 use crate::common;
+use common::floats;
 
 use serde_json::Value;
 use tessera_worker::engine::net::{load_onnx, Layer, Network};
@@ -72,9 +73,6 @@ fn float32_error_bound(net: &Network, x: &[f64]) -> Vec<f64> {
     e.iter().map(|v| 1.5 * v + 1e-30).collect()
 }
 
-fn floats(v: &Value) -> Vec<f64> {
-    v.as_array().expect("array").iter().map(|x| x.as_f64().expect("number")).collect()
-}
 
 #[test]
 fn evaluation_matches_onnxruntime() {

@@ -14,67 +14,20 @@
 //! own sums. For a dense layer with `n` inputs any float64 evaluation (any summation
 //! order, with or without FMA) is within `γ_{n+1}·(|W|·|a| + |b|)` of the exact
 //! `W·a + b` (the standard dot-product error bound, `γ_k = k·u/(1 − k·u)`, `u = 2⁻⁵³`),
-//! propagated through the layers (ReLU is 1-Lipschitz), see `eval_error_bound`. The
+//! propagated through the layers (ReLU is 1-Lipschitz), see `common::eval_with_error`. The
 //! allowance is of order 1e-15 of the values; a relaxation that is wrong by more is
 //! caught. The test also checks that onnxruntime and `Network::eval` agree within the
 //! same bound (the loaded network is the one onnxruntime ran).
 
 use crate::common;
+use common::{floats, gamma, read_f64s};
 
 use ndarray::{Array1, Array2};
 use serde_json::Value;
 use tessera_worker::engine::interval::Interval;
 use tessera_worker::engine::net::bounds::linear_lower_bounds;
-use tessera_worker::engine::net::{load_onnx, Layer, Network};
+use tessera_worker::engine::net::load_onnx;
 
-const U64: f64 = 1.0 / 9_007_199_254_740_992.0; // 2⁻⁵³
-
-fn gamma(n: usize) -> f64 {
-    let nu = n as f64 * U64;
-    nu / (1.0 - nu)
-}
-
-/// A bound `e` per output on `|fl(y(x)) − y(x)|` for any float64 evaluation `fl` of
-/// the network (our own f64 values `a` are used for the magnitudes, with `2e` added to
-/// cover another evaluation's rounding: `|â| ≤ |a| + 2e`), times (1 + 1e-10) for the
-/// rounding of this estimate itself.
-fn eval_error_bound(net: &Network, x: &[f64]) -> Vec<f64> {
-    let mut a = x.to_vec();
-    let mut e = vec![0.0; x.len()];
-    for layer in net.layers() {
-        match layer {
-            Layer::Dense { w, b } => {
-                let n = w.ncols();
-                let g = gamma(n + 1);
-                let (mut na, mut ne) = (vec![0.0; w.nrows()], vec![0.0; w.nrows()]);
-                for i in 0..w.nrows() {
-                    let (mut s, mut mag, mut prop) = (b[i], b[i].abs(), 0.0);
-                    for j in 0..n {
-                        s += w[[i, j]] * a[j];
-                        mag += w[[i, j]].abs() * (a[j].abs() + 2.0 * e[j]);
-                        prop += w[[i, j]].abs() * e[j];
-                    }
-                    na[i] = s;
-                    ne[i] = prop + g * mag;
-                }
-                a = na;
-                e = ne;
-            }
-            Layer::Relu => a.iter_mut().for_each(|v| *v = v.max(0.0)),
-            other => panic!("ReLU networks only, not {other:?}"),
-        }
-    }
-    e.iter().map(|v| v * (1.0 + 1e-10) + 1e-300).collect()
-}
-
-fn read_f64s(path: &std::path::Path) -> Vec<f64> {
-    let bytes = std::fs::read(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
-    bytes.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().unwrap())).collect()
-}
-
-fn floats(v: &Value) -> Vec<f64> {
-    v.as_array().expect("array").iter().map(|x| x.as_f64().expect("number")).collect()
-}
 
 /// The objective rows: +e_i, −e_i, e_i − e_j (i ≠ j), and three random combinations.
 fn objectives(m: usize, rng: &mut common::Rng) -> Array2<f64> {
@@ -131,7 +84,7 @@ fn linear_relaxations_hold_at_onnxruntime_points() {
                 let x = &xs[p * n..(p + 1) * n];
                 let y = &ys[p * m..(p + 1) * m];
                 assert!(x.iter().zip(lo.iter().zip(&hi)).all(|(v, (l, h))| l <= v && v <= h), "point outside its box");
-                let e = eval_error_bound(&net, x);
+                let e = common::eval_with_error(&net, x).1;
                 let ours = net.eval(x);
                 for i in 0..m {
                     // Both evaluations are within e of the exact value.

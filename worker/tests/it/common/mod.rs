@@ -2,6 +2,7 @@
 #![allow(dead_code)]
 
 use std::path::PathBuf;
+use tessera_worker::engine::net::{Layer, Network};
 use std::process::Command;
 
 /// SplitMix64: a small deterministic generator, so test data is the same on every run.
@@ -64,4 +65,78 @@ pub fn onnx_cases() -> &'static PathBuf {
         run_reference("onnx_cases.py", &[dir.to_str().unwrap()]);
         dir
     })
+}
+
+pub const U64: f64 = 1.0 / 9_007_199_254_740_992.0; // 2⁻⁵³
+
+pub fn gamma(n: usize) -> f64 {
+    let nu = n as f64 * U64;
+    nu / (1.0 - nu)
+}
+
+/// `net.eval(x)` and, per output, a bound `e` with `|eval − exact| ≤ e`, where `exact`
+/// is the real-arithmetic network value at `x`. Forward error analysis: for a dense
+/// layer with `n` inputs the computed `W·â + b` (any summation order, FMA or not)
+/// differs from `W·a + b` by at most `|W|·e + γ_{n+1}·(|W|·|â| + |b|)` (the standard
+/// dot-product bound, one more rounding for the bias); `|â| ≤ |a_here| + 2e` bounds the
+/// magnitudes whatever order `eval` used. ReLU is exact and 1-Lipschitz; tanh is
+/// 1-Lipschitz and sigmoid 1/4-Lipschitz, with 8 ulps allowed for libm's exp/tanh and
+/// the divide (glibc documents errors of 1–2 ulps; common practice). The estimate's own
+/// rounding is covered by a factor (1 + 1e-10), negligible next to it.
+pub fn eval_with_error(net: &Network, x: &[f64]) -> (Vec<f64>, Vec<f64>) {
+    let mut a = x.to_vec();
+    let mut e = vec![0.0; x.len()];
+    for layer in net.layers() {
+        match layer {
+            Layer::Dense { w, b } => {
+                let n = w.ncols();
+                let g = gamma(n + 1);
+                let (mut na, mut ne) = (vec![0.0; w.nrows()], vec![0.0; w.nrows()]);
+                for i in 0..w.nrows() {
+                    let (mut s, mut mag, mut prop) = (b[i], b[i].abs(), 0.0);
+                    for j in 0..n {
+                        s += w[[i, j]] * a[j];
+                        mag += w[[i, j]].abs() * (a[j].abs() + 2.0 * e[j]);
+                        prop += w[[i, j]].abs() * e[j];
+                    }
+                    na[i] = s;
+                    ne[i] = prop + g * mag;
+                }
+                a = na;
+                e = ne;
+            }
+            Layer::Relu => a.iter_mut().for_each(|v| *v = v.max(0.0)),
+            Layer::Sigmoid => {
+                for i in 0..a.len() {
+                    a[i] = 1.0 / (1.0 + (-a[i]).exp());
+                    e[i] = 0.25 * e[i] + 8.0 * U64 * 2.0 * a[i].abs();
+                }
+            }
+            Layer::Tanh => {
+                for i in 0..a.len() {
+                    a[i] = a[i].tanh();
+                    e[i] += 8.0 * U64 * 2.0 * a[i].abs();
+                }
+            }
+        }
+    }
+    let y = net.eval(x);
+    (y, e.iter().map(|v| v * (1.0 + 1e-10) + 1e-300).collect())
+}
+
+/// The numbers of a JSON array (a reference script's answer).
+pub fn floats(v: &serde_json::Value) -> Vec<f64> {
+    v.as_array().expect("array").iter().map(|x| x.as_f64().expect("number")).collect()
+}
+
+/// Raw little-endian f64s, the exchange format with the reference scripts (exact, unlike
+/// decimal text).
+pub fn write_f64s(path: &std::path::Path, v: &[f64]) {
+    let bytes: Vec<u8> = v.iter().flat_map(|x| x.to_le_bytes()).collect();
+    std::fs::write(path, bytes).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+}
+
+pub fn read_f64s(path: &std::path::Path) -> Vec<f64> {
+    let bytes = std::fs::read(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    bytes.chunks_exact(8).map(|c| f64::from_le_bytes(c.try_into().unwrap())).collect()
 }
