@@ -1,11 +1,11 @@
 //! What each fuzz target checks, shared by the fuzz targets (`fuzz/fuzz_targets/`) and
 //! the regression tests that replay every input the fuzzer ever found failing
-//! (`worker/tests/it/fuzz_regressions.rs`). Each check panics on a violation.
+//! (`engine/tests/it/fuzz_regressions.rs`). Each check panics on a violation.
 
-use tessera_worker::engine::expr;
-use tessera_worker::engine::interval::Interval;
-use tessera_worker::engine::net::{bounds, onnx};
-use tessera_worker::engine::spec::{self, BoundsMethod};
+use tessera_engine::expr;
+use tessera_engine::interval::Interval;
+use tessera_engine::net::{bounds, onnx};
+use tessera_engine::spec::{self, BoundsMethod};
 
 const NAMES: [&str; 3] = ["x", "y", "z"];
 const POINT: [f64; 3] = [0.75, -1.5, 2.0];
@@ -48,7 +48,7 @@ pub fn check_onnx(data: &[u8]) {
         .layers()
         .iter()
         .map(|l| match l {
-            tessera_worker::engine::net::Layer::Dense { w, .. } => w.len(),
+            tessera_engine::net::Layer::Dense { w, .. } => w.len(),
             _ => 0,
         })
         .sum();

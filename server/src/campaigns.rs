@@ -11,8 +11,8 @@ use serde_json::{json, Value};
 use sha2::Digest;
 use sqlx::Row;
 use std::collections::HashMap;
-use tessera_worker::caution::CAUTION;
-use tessera_worker::engine::spec::{self, NetworkShape};
+use tessera_engine::caution::CAUTION;
+use tessera_engine::spec::{self, NetworkShape};
 
 /// What the coverage answer and the reports say of the `counterexample` status.
 pub const COUNTEREXAMPLE_NOTE: &str = "counterexample: the volume of leaf cells that each hold a re-checked \

@@ -10,9 +10,9 @@ use std::sync::LazyLock;
 /// The page as written; its footer holds the marker that [`INDEX_HTML`] replaces by the caution.
 const INDEX_TEMPLATE: &str = include_str!("dashboard/index.html");
 const CAUTION_MARKER: &str = "<!--caution-->";
-/// The page with the caution from [`tessera_worker::caution`] (plain text: no markup to escape).
+/// The page with the caution from [`tessera_engine::caution`] (plain text: no markup to escape).
 static INDEX_HTML: LazyLock<String> =
-    LazyLock::new(|| INDEX_TEMPLATE.replacen(CAUTION_MARKER, tessera_worker::caution::CAUTION, 1));
+    LazyLock::new(|| INDEX_TEMPLATE.replacen(CAUTION_MARKER, tessera_engine::caution::CAUTION, 1));
 const APP_JS: &str = include_str!("dashboard/app.js");
 const STYLE_CSS: &str = include_str!("dashboard/style.css");
 
@@ -50,7 +50,7 @@ mod tests {
     #[test]
     fn assets_carry_the_caution_and_load_nothing_from_elsewhere() {
         assert_eq!(INDEX_TEMPLATE.matches(CAUTION_MARKER).count(), 1);
-        assert!(INDEX_HTML.contains(tessera_worker::caution::CAUTION));
+        assert!(INDEX_HTML.contains(tessera_engine::caution::CAUTION));
         assert!(!INDEX_HTML.contains(CAUTION_MARKER));
         for (name, text) in [("index.html", INDEX_HTML.as_str()), ("app.js", APP_JS), ("style.css", STYLE_CSS)] {
             for bad in ["http://", "https://", "//cdn", "@import"] {

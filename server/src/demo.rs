@@ -11,7 +11,7 @@ use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
-use tessera_worker::caution::CAUTION;
+use tessera_engine::caution::CAUTION;
 
 /// The demo scenarios, embedded: (folder, spec, [(file name, bytes)]).
 const SCENARIOS: &[(&str, &str, &[(&str, &[u8])])] = &[

@@ -4,7 +4,7 @@
 use axum::http::StatusCode;
 use axum::response::{IntoResponse, Response};
 use serde::Serialize;
-use tessera_worker::engine::spec::SpecError;
+use tessera_engine::spec::SpecError;
 
 /// An error answer. `error` is a stable machine-readable code, `detail` a sentence
 /// for people, `field` the JSON path or parameter at fault when there is one.

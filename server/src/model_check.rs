@@ -1,8 +1,8 @@
 //! Validation of uploaded models: a model is accepted only if the engine's own ONNX
 //! reader accepts it, so every stored model is one a worker can load.
 
-use tessera_worker::engine::net;
-use tessera_worker::engine::spec::NetworkShape;
+use tessera_engine::net;
+use tessera_engine::spec::NetworkShape;
 
 /// Read `bytes` with the engine's ONNX reader and return the network's input and
 /// output widths. The error names the node or tensor at fault; never panics.
@@ -16,7 +16,7 @@ pub fn inspect_model(bytes: &[u8]) -> Result<NetworkShape, String> {
 /// Small valid models for the tests and the benchmark (not part of the validation path).
 pub mod testing {
     use prost::Message;
-    use tessera_worker::engine::net::proto::*;
+    use tessera_engine::net::proto::*;
 
     fn value_info(name: &str, dims: &[i64]) -> ValueInfoProto {
         ValueInfoProto {

@@ -51,7 +51,7 @@ pub fn document(routes: &[Route]) -> Value {
         "info": {
             "title": "Tessera campaign server",
             "version": env!("CARGO_PKG_VERSION"),
-            "description": format!("Campaigns, cells, leases and exact coverage accounting. {}", tessera_worker::caution::CAUTION)
+            "description": format!("Campaigns, cells, leases and exact coverage accounting. {}", tessera_engine::caution::CAUTION)
         },
         "security": [{"bearer": []}],
         "paths": paths,

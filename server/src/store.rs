@@ -73,7 +73,7 @@ pub struct CampaignInfo {
 
 impl CampaignInfo {
     /// Build from a validated spec.
-    pub fn from_spec(id: &str, spec_hash: &str, spec: &tessera_worker::engine::spec::Spec) -> CampaignInfo {
+    pub fn from_spec(id: &str, spec_hash: &str, spec: &tessera_engine::spec::Spec) -> CampaignInfo {
         let envelope: Vec<[f64; 2]> =
             spec.states.iter().map(|s| spec.doc.envelope.get(s).copied().unwrap_or([0.0, 0.0])).collect();
         let split_envelope = spec.split.iter().map(|&k| envelope[k]).collect();
@@ -296,7 +296,7 @@ impl Store {
         let Some(row) = row else { return Ok(None) };
         let json: String = row.try_get(0)?;
         let hash: String = row.try_get(1)?;
-        let spec = tessera_worker::engine::spec::parse_spec(&json)
+        let spec = tessera_engine::spec::parse_spec(&json)
             .map_err(|e| ApiError::internal(format!("stored spec of campaign {id} no longer validates: {e:?}")))?;
         let info = Arc::new(CampaignInfo::from_spec(id, &hash, &spec));
         if let Ok(mut m) = self.infos.write() {

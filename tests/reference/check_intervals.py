@@ -1,6 +1,6 @@
 """Check interval enclosures against mpmath evaluated at 60 significant digits.
 
-Reads JSON lines produced by worker/tests/it/interval_reference.rs: each record names a
+Reads JSON lines produced by engine/tests/it/interval_reference.rs: each record names a
 function, its argument intervals, sample points (endpoints and interior points, exact
 doubles) and our enclosure. For every sample point where the real function is defined,
 the exact value (mpmath, 60 digits) must lie inside the enclosure. Reference: mpmath

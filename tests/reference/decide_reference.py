@@ -1,6 +1,6 @@
 #!/usr/bin/env python3
 """Controller networks and their decisions by onnxruntime (the reference runtime of the
-ONNX standard, PyPI), for worker/tests/it/decide_on_star.rs.
+ONNX standard, PyPI), for engine/tests/it/decide_on_star.rs.
 
 Usage:
   decide_reference.py nets OUT_DIR

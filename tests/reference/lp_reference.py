@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""Reference optima of small linear programs over a box, for worker/tests/it/lp_reference.rs.
+"""Reference optima of small linear programs over a box, for engine/tests/it/lp_reference.rs.
 
 Reference: scipy.optimize.linprog with the HiGHS solver (a general-purpose LP solver
 from PyPI), with its feasibility tolerances tightened to 1e-10. Its floating-point

@@ -1,6 +1,6 @@
 #!/usr/bin/env python3
 """Exact minima of output differences of small ReLU networks over polytopes, for
-worker/tests/it/net_polytope_milp.rs.
+engine/tests/it/net_polytope_milp.rs.
 
 Reference: scipy.optimize.milp (HiGHS, a general-purpose MILP solver from PyPI) on the
 standard big-M encoding of ReLU (common practice: h ≥ z, h ≥ 0, h ≤ z − l·(1 − δ),

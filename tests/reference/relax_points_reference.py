@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """Random ReLU networks evaluated by onnxruntime (the reference runtime of the ONNX
 standard, from PyPI) at many random points of input boxes, for
-worker/tests/it/relaxation_points.rs.
+engine/tests/it/relaxation_points.rs.
 
 Usage: relax_points_reference.py OUT_DIR
 Writes OUT_DIR/net*.onnx (float64, onnx helper API), for every box two raw

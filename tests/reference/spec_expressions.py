@@ -1,5 +1,5 @@
 """An interpreter of the campaign spec's expression language for the reference checks,
-written apart from both the engine (worker/src/engine/expr.rs) and the demo simulator
+written apart from both the engine (engine/src/expr.rs) and the demo simulator
 (demo/simulate.py), so that an outside check does not share their reading of a spec.
 
 The language, as documented in expr.rs and DEVELOPERS.md: numbers, names, `pi`, `+ - * /`

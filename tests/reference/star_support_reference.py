@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""Support values of constrained zonotopes, for worker/tests/it/star_sampling.rs.
+"""Support values of constrained zonotopes, for engine/tests/it/star_sampling.rs.
 
 A star is {x : x_i = c_i + Σ_s g_is ε_s + d_i, ε ∈ [−1, 1]^K, |d_i| ≤ e_i,
 a_k·ε ≤ rhs_k}. Its support in direction v, max of v·x over the star, is a linear

@@ -3,12 +3,12 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 use std::process::ExitCode;
-use tessera_worker::caution::{CAUTION, CAUTION_LINE};
-use tessera_worker::engine::check::check_cell;
-use tessera_worker::engine::closed_loop::ClosedLoop;
-use tessera_worker::engine::falsify;
-use tessera_worker::engine::spec;
-use tessera_worker::engine::verdict::{Verdict, VerdictKind};
+use tessera_engine::caution::{CAUTION, CAUTION_LINE};
+use tessera_engine::check::check_cell;
+use tessera_engine::closed_loop::ClosedLoop;
+use tessera_engine::falsify;
+use tessera_engine::spec;
+use tessera_engine::verdict::{Verdict, VerdictKind};
 
 /// Load a spec file and its networks (paths relative to the spec file).
 pub fn load_closed_loop(path: &Path) -> Result<ClosedLoop, String> {
@@ -118,7 +118,7 @@ pub fn replay(verdict_path: &Path, spec_override: Option<&Path>) -> ExitCode {
         }
     };
     let cx_value = if value.get("counterexample").is_some() { value["counterexample"].clone() } else { value.clone() };
-    let cx: tessera_worker::engine::verdict::Counterexample = match serde_json::from_value(cx_value) {
+    let cx: tessera_engine::verdict::Counterexample = match serde_json::from_value(cx_value) {
         Ok(c) => c,
         Err(e) => {
             eprintln!("error: counterexample: {e}");

@@ -5,9 +5,9 @@ mod cli_engine;
 use clap::{Parser, Subcommand};
 use std::path::PathBuf;
 use std::process::ExitCode;
-use tessera_worker::engine::interval::Interval;
-use tessera_worker::engine::net::{self, OutputBounds};
-use tessera_worker::engine::spec::{self, BoundsMethod};
+use tessera_engine::interval::Interval;
+use tessera_engine::net::{self, OutputBounds};
+use tessera_engine::spec::{self, BoundsMethod};
 
 #[derive(Parser)]
 #[command(name = "tessera-worker", version, about = "Tessera worker: sound reachability of campaign cells")]

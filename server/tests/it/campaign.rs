@@ -35,7 +35,7 @@ fn assert_expected_fractions(cov: &Value) {
     // The stored name of the status does not leak.
     assert!(st.get("unsafe").is_none(), "{cov}");
     assert!(cov["counterexample_note"].as_str().unwrap().contains("upper bound"), "{cov}");
-    assert_eq!(cov["caution"], tessera_worker::caution::CAUTION);
+    assert_eq!(cov["caution"], tessera_engine::caution::CAUTION);
     assert_eq!(st["unresolved"]["cells"], 8);
     assert_eq!(cov["split_cells"], 11);
     assert_eq!(cov["leaf_volume_matches_total"], true);
@@ -63,7 +63,7 @@ async fn scripted_campaign_ends_with_exact_fractions() {
         c["spec_hash"].as_str().unwrap()
     );
     // The served spec validates, and its hash is the SHA-256 of the served bytes.
-    tessera_worker::engine::spec::parse_spec(&spec_resp.text()).expect("served spec validates");
+    tessera_engine::spec::parse_spec(&spec_resp.text()).expect("served spec validates");
     {
         use sha2::Digest;
         assert_eq!(hex::encode(sha2::Sha256::digest(&spec_resp.body)), c["spec_hash"].as_str().unwrap());
@@ -139,14 +139,14 @@ async fn scripted_campaign_ends_with_exact_fractions() {
     assert_eq!(rep["model_sha256"], json!([model]));
     assert_eq!(rep["engine_versions"], json!(["scripted-1"]));
     // The caution in full, float32 point included, from the one place it is written.
-    assert_eq!(rep["caution"], tessera_worker::caution::CAUTION);
+    assert_eq!(rep["caution"], tessera_engine::caution::CAUTION);
     assert!(rep["caution"].as_str().unwrap().contains("float32"));
     assert_eq!(rep["coverage"]["statuses"]["safe"]["reduced"], "7/16");
     assert_eq!(rep["coverage"]["statuses"]["counterexample"]["reduced"], "1/16");
     let r = ts.client.get(&format!("/api/v1/campaigns/{id}/report.md"), ts.token(Role::Viewer)).await;
     assert!(r.content_type.starts_with("text/markdown"));
     let md = r.text();
-    let caution = tessera_worker::caution::CAUTION;
+    let caution = tessera_engine::caution::CAUTION;
     for needle in [caution, c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1", "| counterexample | 1 |", "upper bound"] {
         assert!(md.contains(needle), "report.md lacks {needle}:\n{md}");
     }

@@ -154,7 +154,7 @@ async fn dashboard_pages_are_public_and_self_contained() {
         assert!(csp.contains("default-src 'none'") && csp.contains("connect-src 'self'"), "{csp}");
     }
     let page = ts.client.req("GET", "/dashboard", None, None).await.text();
-    assert!(page.contains(tessera_worker::caution::CAUTION), "the dashboard shows the caution in full");
+    assert!(page.contains(tessera_engine::caution::CAUTION), "the dashboard shows the caution in full");
     assert!(page.contains("/dashboard/app.js"));
     // A page never carries data: without a token the API still answers 401.
     let r = ts.client.req("GET", "/api/v1/campaigns", None, None).await;

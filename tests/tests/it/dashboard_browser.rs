@@ -384,7 +384,7 @@ fn dashboard_draws_the_coverage_map_and_pauses_in_a_real_browser() {
     assert_eq!(b.eval("localStorage.length"), json!(0));
     assert_eq!(b.eval("document.getElementById('who').textContent"), json!("role: submitter"));
     let footer = b.eval("document.querySelector('footer').textContent.replace(/\\s+/g, ' ').trim()");
-    assert_eq!(footer, json!(tessera_worker::caution::CAUTION), "the caution in full, from its one source");
+    assert_eq!(footer, json!(tessera_engine::caution::CAUTION), "the caution in full, from its one source");
     let traj_note = b.eval("document.getElementById('traj-note').textContent");
     assert!(traj_note.as_str().unwrap().starts_with(&format!("{} trajectories", tally.unsafe_)), "{traj_note}");
     let legend = b.eval("document.getElementById('map-legend').textContent");

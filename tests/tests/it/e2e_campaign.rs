@@ -132,7 +132,7 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
         .unwrap();
     assert_eq!(gate.status.code(), Some(0), "gate: {}{}", String::from_utf8_lossy(&gate.stdout), String::from_utf8_lossy(&gate.stderr));
     // Every verdict the client prints ends with the caution line.
-    let caution = tessera_worker::caution::CAUTION_LINE;
+    let caution = tessera_engine::caution::CAUTION_LINE;
     let gate_out = String::from_utf8_lossy(&gate.stdout);
     assert!(gate_out.starts_with("pass: proven-safe fraction"), "{gate_out}");
     assert_eq!(gate_out.lines().last(), Some(caution), "{gate_out}");
@@ -181,7 +181,7 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
         .output()
         .unwrap();
     assert!(md.status.success());
-    assert!(String::from_utf8_lossy(&md.stdout).contains(tessera_worker::caution::CAUTION), "the report's caution in full");
+    assert!(String::from_utf8_lossy(&md.stdout).contains(tessera_engine::caution::CAUTION), "the report's caution in full");
 
     // The training pipeline's gate example against this live server: it uploads the
     // model, creates its own campaign, follows it to the end and passes min-safe 0.

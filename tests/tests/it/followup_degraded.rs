@@ -175,7 +175,7 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
     assert_eq!(g.status.code(), Some(1), "{}", text(&g));
     let out = String::from_utf8_lossy(&g.stdout);
     assert!(out.contains("lies in cells with a counterexample now"), "{}", text(&g));
-    assert_eq!(out.lines().last(), Some(tessera_worker::caution::CAUTION_LINE), "{}", text(&g));
+    assert_eq!(out.lines().last(), Some(tessera_engine::caution::CAUTION_LINE), "{}", text(&g));
     let ch = get(&format!("{url}/api/v1/campaigns/{b}/changes"), &admin);
     assert_eq!(ch["final"], true, "{ch}");
     let s2u = ch["summary"]["safe_to_counterexample"]["fraction"].as_f64().unwrap();
@@ -234,14 +234,14 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
     assert_eq!(g.status.code(), Some(1), "pipeline gate: {}", text(&g));
     let out = String::from_utf8_lossy(&g.stdout);
     assert!(out.contains("lies in cells with a counterexample now"), "{}", text(&g));
-    assert!(out.contains(tessera_worker::caution::CAUTION), "the server's caution: {}", text(&g));
+    assert!(out.contains(tessera_engine::caution::CAUTION), "the server's caution: {}", text(&g));
 
     // Follow-up C with the original controller: nothing proven safe before lies in a
     // counterexample cell now (the flag under its earlier name still works).
     let c = submit(&spec_a, Some(&a));
     let g = tessera(&["gate", &c, "--no-new-unsafe", "--interval", "0.3"]);
     assert_eq!(g.status.code(), Some(0), "{}", text(&g));
-    assert_eq!(String::from_utf8_lossy(&g.stdout).lines().last(), Some(tessera_worker::caution::CAUTION_LINE), "{}", text(&g));
+    assert_eq!(String::from_utf8_lossy(&g.stdout).lines().last(), Some(tessera_engine::caution::CAUTION_LINE), "{}", text(&g));
     let t = get(&format!("{url}/api/v1/admin/campaigns/{c}/tiling"), &admin);
     assert_eq!(t["ok"], true, "{t}");
 }

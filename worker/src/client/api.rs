@@ -152,7 +152,7 @@ impl Api {
     pub fn submit(&self, worker: &str, results: &[ResultItem]) -> Result<Vec<ItemAnswer>, ApiError> {
         let body = serde_json::json!({
             "worker": worker,
-            "engine_version": crate::engine::verdict::ENGINE_VERSION,
+            "engine_version": tessera_engine::verdict::ENGINE_VERSION,
             "results": results,
         });
         let v: serde_json::Value = self.post_json("/api/v1/results", &body)?;

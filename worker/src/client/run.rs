@@ -6,10 +6,10 @@
 
 use super::api::{Api, ApiError, LeasedCell, ResultItem};
 use super::outbox::Outbox;
-use crate::engine::check::check_cell;
-use crate::engine::closed_loop::ClosedLoop;
-use crate::engine::net::{self, Network};
-use crate::engine::spec::parse_spec;
+use tessera_engine::check::check_cell;
+use tessera_engine::closed_loop::ClosedLoop;
+use tessera_engine::net::{self, Network};
+use tessera_engine::spec::parse_spec;
 use std::collections::{HashMap, VecDeque};
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::mpsc;

@@ -5,9 +5,9 @@ use crate::common;
 
 use serde_json::Value;
 use std::process::Command;
-use tessera_worker::engine::interval::Interval;
-use tessera_worker::engine::net::{load_onnx, output_bounds};
-use tessera_worker::engine::spec::BoundsMethod;
+use tessera_engine::interval::Interval;
+use tessera_engine::net::{load_onnx, output_bounds};
+use tessera_engine::spec::BoundsMethod;
 
 fn worker() -> Command {
     Command::new(env!("CARGO_BIN_EXE_tessera-worker"))

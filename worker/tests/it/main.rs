@@ -1,25 +1,9 @@
-//! The crate's integration tests, one module per subject, linked into one binary
-//! (one link instead of one per file). Run one subject with `cargo test -p tessera-worker --test it SUBJECT::`.
+//! The worker crate's integration tests: the `tessera-worker` binary's engine commands,
+//! one module per subject, linked into one binary. They share the engine tests' helpers
+//! (`engine/tests/it/common/`). Run one subject with `cargo test -p tessera-engine --test it SUBJECT::`.
 
+#[path = "../../../engine/tests/it/common/mod.rs"]
 mod common;
-mod plant_common;
 
 mod bounds_cli;
-mod bounds_exact;
-mod bounds_soundness;
-mod closed_loop_soundness;
-mod decide_on_star;
-mod demo_networks;
-mod demo_scenarios;
-mod fuzz_regressions;
-mod interval_reference;
-mod lp_reference;
-mod net_polytope_milp;
-mod onnx_import;
-mod plant_closed_forms;
-mod plant_disturbance;
-mod plant_scipy_reference;
-mod relaxation_points;
-mod shadow_adversarial;
 mod spec_cli;
-mod star_sampling;

@@ -10,7 +10,7 @@
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
-use tessera_worker::caution::{CAUTION, CAUTION_LINE};
+use tessera_engine::caution::{CAUTION, CAUTION_LINE};
 
 fn worker() -> Command {
     Command::new(env!("CARGO_BIN_EXE_tessera-worker"))
