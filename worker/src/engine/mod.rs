@@ -9,6 +9,7 @@ pub mod closed_loop;
 pub mod expr;
 pub mod falsify;
 pub mod interval;
+pub mod linear;
 pub mod lp;
 pub mod net;
 pub mod plant;
