@@ -19,10 +19,13 @@
 //!   for every other `j`, enforced only when both hold (big-M from the sound bounds of
 //!   `y_c − y_j`); the inputs applied in a period are those of the decided command
 //!   (latency 0) or of the previous one (latency 1);
-//! * the unsafe set: one binary per (sample, region) that may be met, exactly one of
-//!   them chosen, and that region's inequalities at that sample, each widened by a sound
-//!   bound on how far the state moves between that sample and the next, so a trajectory
-//!   that enters the region anywhere in between is a point of the program too.
+//! * the unsafe set: one binary per (sample step, region) that may be met (zonotope
+//!   bounds with the motion within the step enclosed), exactly one of them chosen. Each
+//!   inequality `g(x) ≤ 0` of that region must hold at one end of the step (a binary per
+//!   inequality picks which) up to the interpolation error `(h²/8)·max|g''|` of the
+//!   step (`g'' = a·ẍ`, `ẍ = A ẋ` bounded over the step with inputs and disturbance
+//!   held): a trajectory that enters the region anywhere within the step is a point of
+//!   the program too.
 //!
 //! **Robustness.** "Safe" rests on the solver's claim that this program is infeasible,
 //! made in floating point. To keep rounding from flipping that claim, the program is a
@@ -193,6 +196,8 @@ struct Bounds {
     forms: Vec<Vec<Affine>>,
     /// `motion[s]`: box of `x(t) − x_s` for `t` in sample step `s`.
     motion: Vec<Vec<Interval>>,
+    /// `accel[s]`: box of `ẍ = A ẋ` over step `s` (inputs and disturbances held).
+    accel: Vec<Vec<Interval>>,
 }
 
 fn hull_over_commands(cl: &ClosedLoop, gb: &IMat) -> Vec<Interval> {
@@ -225,7 +230,9 @@ fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize
     let mut x: Vec<Affine> = cell.iter().enumerate().map(|(i, iv)| fresh_at(*iv, i)).collect();
     let gbu_hull = hull_over_commands(cl, &p.gb);
     let gbu_hull_r = hull_over_commands(cl, &p.gb_r);
-    let (mut forms, mut boxes, mut motion) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut forms, mut boxes, mut motion, mut accel) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+    let bu_hull = hull_over_commands(cl, &p.lin.plant.b);
+    let a_mat = &p.lin.plant.a;
     let mut u_forms: Vec<Affine> = Vec::new();
     let mut w_forms: Vec<Affine> = Vec::new();
     for s in 0..=samples {
@@ -255,6 +262,20 @@ fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize
                 t
             })
             .collect();
+        // ẋ = A x + B u + E w + c over the step's box, then ẍ = A ẋ.
+        let xdot: Vec<Interval> = (0..n)
+            .map(|i| {
+                let mut t = bu_hull[i] + p.lin.plant.c[i];
+                for j in 0..n {
+                    t = t + a_mat[i][j] * (bx[j] + mv[j]);
+                }
+                for (l, w) in spec.disturbance_ranges.iter().enumerate() {
+                    t = t + p.lin.plant.e[i][l] * *w;
+                }
+                t
+            })
+            .collect();
+        accel.push((0..n).map(|i| (0..n).fold(Interval::ZERO, |t, j| t + a_mat[i][j] * xdot[j])).collect());
         motion.push(mv);
         x = (0..n)
             .map(|i| {
@@ -269,7 +290,7 @@ fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize
             })
             .collect();
     }
-    Some(Bounds { boxes, forms, motion })
+    Some(Bounds { boxes, forms, motion, accel })
 }
 
 /// A form holding `iv` on symbol `i` (the cell's own symbols).
@@ -277,18 +298,6 @@ fn fresh_at(iv: Interval, i: usize) -> Affine {
     let mid = iv.mid();
     let rad = (Interval::point(iv.hi()) - Interval::point(mid)).hi().max((Interval::point(mid) - Interval::point(iv.lo())).hi());
     Affine::symbol(mid, i, rad)
-}
-
-/// The unsafe inequality `g(x) ≤ 0` (`g = a·x + g0`) at sample `s`, implied for `x_s` by
-/// `g(x(t)) ≤ 0` at some `t` of the step: `mid(a)·x_s ≤ rhs`. Returns `(mid(a), rhs)`.
-fn relaxed_inequality(g: &linear::StateAffine, bx: &[Interval], motion: &[Interval]) -> (Vec<f64>, f64) {
-    let a: Vec<f64> = g.coeffs.iter().map(|c| c.mid()).collect();
-    // rhs = −g0 + Σ (a − mid a)·(−x) + Σ a·(−d), upper bound.
-    let mut rhs = -g.constant;
-    for j in 0..bx.len() {
-        rhs = rhs - (g.coeffs[j] - Interval::point(a[j])) * bx[j] - g.coeffs[j] * motion[j];
-    }
-    (a, rhs.hi())
 }
 
 /// Whether region `r` may hold some state of step `s` (zonotope lower bounds).
@@ -328,14 +337,15 @@ fn encode(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], c0: usize, b: &Bound
     let n = cell.len();
     let m = p.m as usize;
     let n_cmd = spec.commands.len();
-    let last_sample = pairs.iter().map(|q| q.0).max().unwrap_or(0);
-    let last_period = last_sample / m;
+    // Steps 0..=last_step, states at their ends.
+    let last_step = pairs.iter().map(|q| q.0).max().unwrap_or(0);
+    let last_period = last_step / m;
     let mut model = Model::default();
     let widened = mode == Mode::Widened;
     let bound_of = |iv: Interval| if widened { widen(iv) } else { iv };
     // States at samples 0..=last_sample.
     let mut xs: Vec<Vec<usize>> = Vec::new();
-    for (s, bx) in b.boxes.iter().take(last_sample + 1).enumerate() {
+    for (s, bx) in b.boxes.iter().take(last_step + 2).enumerate() {
         let v = (0..n)
             .map(|i| {
                 let iv = if s == 0 { cell[i] } else { bound_of(bx[i]) };
@@ -462,7 +472,7 @@ fn encode(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], c0: usize, b: &Bound
         decided.push(d);
     }
     // Dynamics between samples.
-    for s in 0..last_sample {
+    for s in 0..=last_step {
         let k = s / m;
         let applied: Option<&Vec<usize>> = if spec.latency == 0 { Some(&decided[k]) } else if k == 0 { None } else { Some(&decided[k - 1]) };
         for i in 0..n {
@@ -509,7 +519,7 @@ fn encode(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], c0: usize, b: &Bound
             row.row(&mut model, 0.0, 0.0);
         }
     }
-    // The unsafe set: exactly one (sample, region) pair, its inequalities enforced.
+    // The unsafe set: exactly one (step, region) pair, its inequalities enforced.
     let zs: Vec<usize> = pairs.iter().map(|_| model.binary()).collect();
     model.row(zs.iter().map(|&z| (z, 1.0)).collect(), 1.0, 1.0);
     let depth = if mode == Mode::Tightened {
@@ -519,40 +529,63 @@ fn encode(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], c0: usize, b: &Bound
     } else {
         None
     };
+    let h = (Interval::point(spec.period) / Interval::point(m as f64)).hi();
     for (&(s, r), &z) in pairs.iter().zip(&zs) {
-        for g in &spec_region(p, r) {
-            let (a, rhs) = if widened {
-                let (a, rhs) = relaxed_inequality(g, &b.boxes[s], &b.motion[s]);
-                (a, rhs + margin_of(rhs.abs()))
+        for g in &p.lin.unsafe_regions[r] {
+            let a: Vec<f64> = g.coeffs.iter().map(|c| c.mid()).collect();
+            let lin_at = |t: usize| {
+                let mut lin = Lin::default();
+                for j in 0..n {
+                    if a[j] != 0.0 {
+                        lin.terms.push((xs[t][j], a[j]));
+                    }
+                }
+                lin
+            };
+            if widened {
+                // If g(x(τ)) ≤ 0 at some τ of step s, then g at one of the step's ends is
+                // at most the interpolation error (h²/8)·max|g''| (g'' = a·ẍ, u and w held):
+                // mid(a)·x_end ≤ −g0 + (a − mid a)·(−x) + (h²/8)·|a·ẍ|, over the step's box.
+                let hull: Vec<Interval> = (0..n).map(|j| b.boxes[s][j].hull(&b.boxes[s + 1][j])).collect();
+                let mut rhs = -g.constant;
+                let mut curv = Interval::ZERO;
+                for j in 0..n {
+                    rhs = rhs - (g.coeffs[j] - Interval::point(a[j])) * hull[j];
+                    curv = curv + g.coeffs[j] * b.accel[s][j];
+                }
+                rhs = rhs + Interval::point(h) * Interval::point(h) / Interval::point(8.0) * Interval::point(curv.mag());
+                let rhs = (rhs + Interval::point(margin_of(rhs.mag()))).hi();
+                // One binary picks the end: a·x_s ≤ rhs + M(1 − z) + M e, and
+                // a·x_{s+1} ≤ rhs + M(1 − z) + M(1 − e).
+                let e = model.binary();
+                for (end, flip) in [(s, false), (s + 1, true)] {
+                    let mut lin = lin_at(end);
+                    let big = (lin.bound(&model) - Interval::point(rhs)).hi().max(0.0) * 1.01 + 1e-9;
+                    lin.terms.push((z, big));
+                    lin.terms.push((e, if flip { big } else { -big }));
+                    let hi = Interval::point(rhs) + Interval::point(if flip { 2.0 * big } else { big });
+                    lin.row(&mut model, f64::NEG_INFINITY, hi.hi());
+                }
             } else {
-                // At the sample itself, with the coefficients' whole intervals against us.
-                let a: Vec<f64> = g.coeffs.iter().map(|c| c.mid()).collect();
+                // At sample s itself, with the coefficients' whole intervals against us, as
+                // deep as possible.
                 let mut rhs = -g.constant;
                 for j in 0..n {
                     rhs = rhs + (g.coeffs[j] - Interval::point(a[j])) * b.boxes[s][j];
                 }
-                (a, rhs.lo())
-            };
-            let mut lin = Lin::default();
-            for j in 0..n {
-                if a[j] != 0.0 {
-                    lin.terms.push((xs[s][j], a[j]));
+                let rhs = rhs.lo();
+                let mut lin = lin_at(s);
+                let big = (lin.bound(&model) - Interval::point(rhs)).hi().max(0.0) * 1.01 + 1e-9;
+                // a·x + M z + depth ≤ rhs + M
+                lin.terms.push((z, big));
+                if let Some(t) = depth {
+                    lin.terms.push((t, 1.0));
                 }
+                lin.row(&mut model, f64::NEG_INFINITY, (Interval::point(rhs) + Interval::point(big)).hi());
             }
-            let big = (lin.bound(&model) - Interval::point(rhs)).hi().max(0.0) * 1.01 + 1e-9;
-            // a·x + M z (+ depth) ≤ rhs + M
-            lin.terms.push((z, big));
-            if let Some(t) = depth {
-                lin.terms.push((t, 1.0));
-            }
-            lin.row(&mut model, f64::NEG_INFINITY, (Interval::point(rhs) + Interval::point(big)).hi());
         }
     }
     (model, Handles { x0: xs[0].clone(), noise, dist, decided })
-}
-
-fn spec_region(p: &Prepared, r: usize) -> Vec<linear::StateAffine> {
-    p.lin.unsafe_regions[r].clone()
 }
 
 /// Dense and ReLU layers on the program's variables; returns the outputs.
