@@ -648,6 +648,32 @@ fn encode_network(model: &mut Model, cl: &ClosedLoop, net: usize, inputs: &[Lin]
     a
 }
 
+/// The widened programs of a cell, one per initial command (empty when the zonotope
+/// bounds alone keep every step out of the unsafe set), for benchmarks and solver
+/// comparisons. `None` when the bounds are not finite.
+pub fn widened_programs(cl: &ClosedLoop, p: &Prepared, cell: &[Interval]) -> Option<Vec<Model>> {
+    let samples = cl.spec.horizon as usize * p.m as usize;
+    let b = reach_bounds(cl, p, cell, samples)?;
+    let pairs = unsafe_pairs(p, &b, samples);
+    if pairs.is_empty() {
+        return Some(Vec::new());
+    }
+    Some(cl.spec.initial_commands.iter().map(|&c0| encode(cl, p, cell, c0, &b, &pairs, Mode::Widened).0).collect())
+}
+
+/// The (step, region) pairs the zonotope bounds leave possible.
+fn unsafe_pairs(p: &Prepared, b: &Bounds, samples: usize) -> Vec<(usize, usize)> {
+    let mut pairs = Vec::new();
+    for s in 0..samples {
+        for (r, region) in p.lin.unsafe_regions.iter().enumerate() {
+            if may_meet(region, &b.forms[s], &b.motion[s]) {
+                pairs.push((s, r));
+            }
+        }
+    }
+    pairs
+}
+
 /// Decide a cell by the exact method, giving up at `deadline`.
 pub fn decide(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], deadline: Instant) -> Report {
     let spec = &cl.spec;
@@ -658,14 +684,7 @@ pub fn decide(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], deadline: Instan
         report.outcome = Outcome::Inconclusive("the exact method's state bounds are not finite".into());
         return report;
     };
-    let mut pairs = Vec::new();
-    for s in 0..samples {
-        for (r, region) in p.lin.unsafe_regions.iter().enumerate() {
-            if may_meet(region, &b.forms[s], &b.motion[s]) {
-                pairs.push((s, r));
-            }
-        }
-    }
+    let pairs = unsafe_pairs(p, &b, samples);
     if pairs.is_empty() {
         report.outcome = Outcome::Safe { solver_needed: false };
         return report;
