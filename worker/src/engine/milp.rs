@@ -5,8 +5,8 @@
 //! can be handed to another solver for comparison (`to_json`, read by the reference
 //! checks and the benchmark). Solving goes through `good_lp`: the pure-Rust `microlp`
 //! backend always, and HiGHS (a C++ solver built from source by the `highs` crate,
-//! needing cmake and libclang) when the worker is built with the `highs` feature
-//! (see BENCHMARKS.md "Exact method: solver" for the comparison).
+//! needing cmake and libclang) with the `highs` feature, which is on by default and then
+//! preferred (see BENCHMARKS.md "Exact method" for the comparison that chose it).
 //!
 //! Nothing here is a proof by itself: a solver's "infeasible" is a floating-point claim,
 //! and a solver's point is only a candidate. The exact method widens its programs by a
