@@ -3,15 +3,20 @@
 //! counterexample, "inconclusive" otherwise.
 
 use super::closed_loop::ClosedLoop;
+use super::exact::{self, Outcome};
 use super::falsify;
 use super::interval::Interval;
 use super::reach::{self, Proof};
-use super::spec::{BoundsMethod, EngineOptions, SetKind};
-use super::verdict::{Stats, Verdict, VerdictKind, ENGINE_VERSION};
-use std::time::Instant;
+use super::spec::{BoundsMethod, EngineOptions, Method, SetKind};
+use super::verdict::{Reason, Stats, Verdict, VerdictKind, ENGINE_VERSION};
+use std::time::{Duration, Instant};
 
-/// Decide one cell (a box of initial states, one interval per state).
+/// Decide one cell (a box of initial states, one interval per state), by the method the
+/// spec pins (`engine.method`); `auto` is the set methods today.
 pub fn check_cell(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
+    if cl.spec.engine.method == Method::Exact {
+        return check_exact(cl, cell);
+    }
     let started = Instant::now();
     let mut stats = Stats::default();
     let outcome = prove_by_choice(cl, cell, started, &mut stats);
@@ -43,6 +48,80 @@ pub fn check_cell(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
                     reason: Some(f.reason),
                     detail: Some(f.detail),
                     split_hint: Some(f.split_hint.unwrap_or_else(|| reach::widest_normalized(cl, cell))),
+                    ..bare(VerdictKind::Inconclusive)
+                },
+            }
+        }
+    };
+    stats.wall_ms = started.elapsed().as_secs_f64() * 1e3;
+    verdict.stats = stats;
+    verdict
+}
+
+/// The exact method ([`exact`]): "safe" from the solver's infeasibility claim on the
+/// widened program (the verdict's `stats.method` is `exact` and its detail says so) or
+/// from the method's zonotope bounds alone (`stats.method` `zonotope`); "unsafe" only
+/// with a re-checked counterexample. When it decides nothing, the falsifier still runs.
+pub fn check_exact(cl: &ClosedLoop, cell: &[Interval]) -> Verdict {
+    let started = Instant::now();
+    let deadline = started + Duration::from_secs_f64(cl.spec.engine.time_budget_s);
+    let mut stats = Stats { method: Some("exact".into()), ..Stats::default() };
+    let report = match exact::prepare(cl) {
+        Ok(p) => exact::decide(cl, &p, cell, deadline),
+        Err(why) => exact::Report {
+            outcome: Outcome::Inconclusive(format!("the exact method does not apply: {why}")),
+            programs: 0,
+            max_binaries: 0,
+            solver_ms: 0.0,
+        },
+    };
+    stats.solver_ms = report.solver_ms;
+    stats.milp_programs = report.programs;
+    stats.milp_binaries = report.max_binaries as u64;
+    let mut verdict = match report.outcome {
+        Outcome::Safe { solver_needed: true } => Verdict {
+            detail: Some(format!(
+                "exact method: the MILP solver found no trajectory from the cell into the unsafe set over the \
+                 horizon (program widened by a relative margin of {:e}); this verdict rests on the solver's \
+                 floating-point infeasibility claim, not on outward-rounded set arithmetic",
+                exact::MARGIN
+            )),
+            ..bare(VerdictKind::Safe)
+        },
+        Outcome::Safe { solver_needed: false } => {
+            stats.method = Some("zonotope".into());
+            Verdict {
+                detail: Some("exact method's zonotope bounds (outward rounded) keep every sample step out of the unsafe set; no solver was needed".into()),
+                ..bare(VerdictKind::Safe)
+            }
+        }
+        Outcome::Unsafe(cx) => Verdict {
+            detail: Some(format!(
+                "counterexample (found by the exact method, re-checked) enters unsafe region {} at t = {:.4} s",
+                cx.unsafe_region, cx.entry_time
+            )),
+            counterexample: Some(*cx),
+            ..bare(VerdictKind::Unsafe)
+        },
+        Outcome::Inconclusive(why) => {
+            let t_f = Instant::now();
+            let mut sims = 0;
+            let cx = falsify::falsify(cl, cell, None, cl.spec.engine.falsify_samples, seed_of(cell), &mut sims);
+            stats.falsify_ms += t_f.elapsed().as_secs_f64() * 1e3;
+            stats.simulations = sims;
+            match cx {
+                Some(cx) => Verdict {
+                    detail: Some(format!(
+                        "counterexample enters unsafe region {} at t = {:.4} s ({why})",
+                        cx.unsafe_region, cx.entry_time
+                    )),
+                    counterexample: Some(cx),
+                    ..bare(VerdictKind::Unsafe)
+                },
+                None => Verdict {
+                    reason: Some(if Instant::now() >= deadline { Reason::TimeBudget } else { Reason::UnsafeNotExcluded }),
+                    detail: Some(why),
+                    split_hint: Some(reach::widest_normalized(cl, cell)),
                     ..bare(VerdictKind::Inconclusive)
                 },
             }

@@ -200,6 +200,32 @@ pub enum DecisionSplit {
     Widest,
 }
 
+/// Which method decides a cell.
+#[derive(Clone, Copy, Debug, Default, Serialize, Deserialize, PartialEq, Eq)]
+#[serde(rename_all = "snake_case")]
+pub enum Method {
+    /// The engine chooses. Today: the set methods (as `sets`), whatever the loop.
+    #[default]
+    Auto,
+    /// Set propagation (`engine.set`), then the falsifier.
+    Sets,
+    /// The exact method: the loop over the horizon as a mixed-integer linear program.
+    /// Needs linear dynamics, observations and unsafe constraints, and ReLU networks;
+    /// a spec that pins it otherwise is refused, naming the expression at fault.
+    Exact,
+}
+
+fn is_auto(m: &Method) -> bool {
+    *m == Method::Auto
+}
+
+/// Default of `engine.exact_samples`.
+pub const EXACT_SAMPLES: u32 = 4;
+
+fn is_default_samples(v: &u32) -> bool {
+    *v == EXACT_SAMPLES
+}
+
 /// Tuning knobs of the one-cell engine. Every field has a documented default.
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 #[serde(deny_unknown_fields, default)]
@@ -243,6 +269,17 @@ pub struct EngineOptions {
     pub falsify_samples: u32,
     /// Fixed steps per period of the falsifier's simulation. Default 50.
     pub sim_steps: u32,
+    /// Which method decides a cell (`auto`, `sets`, `exact`). Default `auto`. Left out
+    /// of the canonical document when it is the default, so that stored specs keep
+    /// their hash.
+    #[serde(skip_serializing_if = "is_auto")]
+    pub method: Method,
+    /// Samples per control period at which the exact method checks the unsafe set;
+    /// the motion between samples is enclosed and added to the unsafe sets (more
+    /// samples cost continuous variables, not binaries). Default 4. Also left out when
+    /// it is the default.
+    #[serde(skip_serializing_if = "is_default_samples")]
+    pub exact_samples: u32,
 }
 
 impl Default for EngineOptions {
@@ -264,6 +301,8 @@ impl Default for EngineOptions {
             adversary: true,
             falsify_samples: 24,
             sim_steps: 50,
+            method: Method::Auto,
+            exact_samples: EXACT_SAMPLES,
         }
     }
 }
@@ -652,7 +691,7 @@ pub fn compile(doc: SpecDoc) -> Result<Spec, Vec<SpecError>> {
     if !errs.is_empty() {
         return Err(errs);
     }
-    Ok(Spec {
+    let spec = Spec {
         states,
         inputs,
         disturbances,
@@ -676,7 +715,20 @@ pub fn compile(doc: SpecDoc) -> Result<Spec, Vec<SpecError>> {
         refine_unsafe: doc.refinement.refine_unsafe,
         engine: doc.engine.clone(),
         doc,
-    })
+    };
+    // A spec that pins the exact method must have a linear loop.
+    if spec.engine.method == Method::Exact {
+        if let Err(nl) = super::linear::linear_loop(&spec) {
+            return Err(vec![err(
+                nl.path,
+                format!(
+                    "engine.method is 'exact', which needs {}; '{}' is not linear (in '{}')",
+                    nl.needs, nl.culprit, nl.text
+                ),
+            )]);
+        }
+    }
+    Ok(spec)
 }
 
 fn check_engine(o: &EngineOptions, e: &mut Vec<SpecError>) {
@@ -695,6 +747,7 @@ fn check_engine(o: &EngineOptions, e: &mut Vec<SpecError>) {
     range("decision_pieces", o.decision_pieces as f64, 1.0, 4096.0);
     range("falsify_samples", o.falsify_samples as f64, 0.0, 100_000.0);
     range("sim_steps", o.sim_steps as f64, 1.0, 100_000.0);
+    range("exact_samples", o.exact_samples as f64, 1.0, 1024.0);
 }
 
 fn is_identifier(s: &str) -> bool {
@@ -947,6 +1000,35 @@ mod tests {
         assert!(s.canonical_json().contains("\"refine_unsafe\":true"), "{}", s.canonical_json());
         v["refinement"]["refine_unsafe"] = serde_json::json!(false);
         assert!(!parse_spec(&v.to_string()).unwrap().refine_unsafe);
+    }
+
+    #[test]
+    fn pinning_the_exact_method_needs_a_linear_loop() {
+        let mut v = example();
+        v["engine"] = serde_json::json!({"method": "exact"});
+        let s = parse_spec(&v.to_string()).unwrap();
+        assert_eq!(s.engine.method, Method::Exact);
+        v["dynamics"]["h"] = serde_json::json!("q - 0.1 * h * h + leak");
+        let e = errors_of(v.clone());
+        assert_eq!(e.len(), 1, "{e:?}");
+        assert_eq!(e[0].path, "dynamics.h");
+        assert!(e[0].message.contains("'0.1 * h * h'") && e[0].message.contains("exact"), "{}", e[0].message);
+        // The same dynamics are fine with the set methods.
+        v["engine"] = serde_json::json!({"method": "sets"});
+        assert!(errors_of(v.clone()).is_empty());
+        // A nonlinear unsafe constraint is named by its path.
+        v["dynamics"]["h"] = serde_json::json!("q - 0.1 * h + leak");
+        v["engine"] = serde_json::json!({"method": "exact"});
+        v["unsafe"][1]["all"][0] = serde_json::json!("h^2 < 0.01");
+        let e = errors_of(v);
+        assert_eq!(e[0].path, "unsafe[1].all[0]");
+    }
+
+    #[test]
+    fn default_method_options_keep_the_canonical_document() {
+        let s = parse_spec(&example().to_string()).unwrap();
+        let c = s.canonical_json();
+        assert!(!c.contains("method") && !c.contains("exact_samples"), "{c}");
     }
 
     #[test]

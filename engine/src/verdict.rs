@@ -99,6 +99,24 @@ pub struct Stats {
     /// Time of the cheap box attempt made before constrained sets, milliseconds.
     #[serde(default)]
     pub probe_ms: f64,
+    /// Time in the exact method's MILP solver, milliseconds (absent when not used).
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub solver_ms: f64,
+    /// Programs the exact method solved, and the most binaries one of them had.
+    #[serde(default, skip_serializing_if = "is_zero_u32")]
+    pub milp_programs: u32,
+    #[serde(default, skip_serializing_if = "is_zero_u64")]
+    pub milp_binaries: u64,
+}
+
+fn is_zero(v: &f64) -> bool {
+    *v == 0.0
+}
+fn is_zero_u32(v: &u32) -> bool {
+    *v == 0
+}
+fn is_zero_u64(v: &u64) -> bool {
+    *v == 0
 }
 
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]

@@ -10,6 +10,8 @@ mod closed_loop_soundness;
 mod decide_on_star;
 mod demo_networks;
 mod demo_scenarios;
+mod discretise_expm;
+mod exact_reference;
 mod fuzz_regressions;
 mod interval_reference;
 mod lp_reference;
