@@ -11,6 +11,7 @@ use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
+use tessera_protocol::{CampaignState, CellStatus};
 use tessera_worker::caution::CAUTION;
 
 /// The demo scenarios, embedded: (folder, spec, [(file name, bytes)]).
@@ -153,6 +154,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     );
     println!("{} worker processes × {} threads; logs in {}", opts.workers, opts.threads, opts.dir.display());
 
+    use CellStatus::*;
     let started = std::time::Instant::now();
     loop {
         let mut all_done = true;
@@ -160,13 +162,13 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         for (name, id) in &ids {
             let cov = campaigns::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
             let state = cov["state"].as_str().unwrap_or("?");
-            all_done &= state != "running" && state != "paused";
+            all_done &= !CampaignState::parse(state).is_some_and(CampaignState::is_open);
             line.push_str(&format!(
                 "  {name}: safe {:.1}% counterexample {:.1}% unresolved {:.1}% open {:.1}%",
-                pct(&cov, "safe"),
-                pct(&cov, "counterexample"),
-                pct(&cov, "unresolved") + pct(&cov, "failed"),
-                pct(&cov, "pending") + pct(&cov, "leased")
+                pct(&cov, Safe),
+                pct(&cov, Counterexample),
+                pct(&cov, Unresolved) + pct(&cov, Failed),
+                pct(&cov, Pending) + pct(&cov, Leased)
             ));
         }
         println!("{line}");
@@ -195,17 +197,17 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         println!(
             "{:<10} {:>8.2}% {:>14.2}% {:>10.2}% {:>7.2}% {:>7}",
             name,
-            pct(&cov, "safe"),
-            pct(&cov, "counterexample"),
-            pct(&cov, "unresolved"),
-            pct(&cov, "failed"),
+            pct(&cov, Safe),
+            pct(&cov, Counterexample),
+            pct(&cov, Unresolved),
+            pct(&cov, Failed),
             cov["results"].as_i64().unwrap_or(0)
         );
         finals.push(format!(
             "{name}: safe={} counterexample={} unresolved={}",
-            exact(&cov, "safe"),
-            exact(&cov, "counterexample"),
-            exact_sum(&cov, &["unresolved", "failed"])
+            exact(&cov, Safe),
+            exact(&cov, Counterexample),
+            exact_sum(&cov, &[Unresolved, Failed])
         ));
     }
     println!("dashboard: {url}/dashboard (log in with the token in {})", opts.dir.join("admin.token").display());
@@ -228,20 +230,20 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn pct(cov: &Value, status: &str) -> f64 {
-    100.0 * cov["statuses"][status]["fraction"].as_f64().unwrap_or(0.0)
+fn pct(cov: &Value, status: CellStatus) -> f64 {
+    100.0 * cov["statuses"][status.api_name()]["fraction"].as_f64().unwrap_or(0.0)
 }
 
 /// The exact fraction of a status as a decimal with enough digits to be exact for the
 /// campaign's depth (a sum of multiples of 2^-depth has at most `depth` decimals).
-fn exact(cov: &Value, status: &str) -> String {
+fn exact(cov: &Value, status: CellStatus) -> String {
     exact_sum(cov, &[status])
 }
 
-fn exact_sum(cov: &Value, statuses: &[&str]) -> String {
+fn exact_sum(cov: &Value, statuses: &[CellStatus]) -> String {
     let depth = cov["max_depth"].as_u64().unwrap_or(0) as usize;
     let total = cov["total_volume"].as_f64().unwrap_or(1.0);
-    let v: f64 = statuses.iter().map(|s| cov["statuses"][*s]["volume"].as_f64().unwrap_or(0.0)).sum();
+    let v: f64 = statuses.iter().map(|s| cov["statuses"][s.api_name()]["volume"].as_f64().unwrap_or(0.0)).sum();
     // v / 2^depth is exact in f64 for depth ≤ 60 and v < 2^53; print all its digits.
     format!("{:.*}", depth.max(1), v / total)
 }
