@@ -8,6 +8,8 @@ use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::Duration;
+use tessera_protocol::CampaignState;
+use tessera_protocol::CellStatus::{self, Counterexample, Failed, Leased, Pending, Safe, Unresolved};
 use tessera_worker::caution::CAUTION_LINE;
 use tessera_worker::client::api::{Api, ApiError};
 use tessera_worker::engine::spec;
@@ -156,8 +158,8 @@ fn describe(e: ApiError) -> String {
     e.to_string()
 }
 
-fn fraction(cov: &Value, status: &str) -> f64 {
-    cov["statuses"][status]["fraction"].as_f64().unwrap_or(0.0)
+fn fraction(cov: &Value, status: CellStatus) -> f64 {
+    cov["statuses"][status.api_name()]["fraction"].as_f64().unwrap_or(0.0)
 }
 
 fn status(api: &Api, id: &str) -> Result<ExitCode, String> {
@@ -190,21 +192,21 @@ fn status(api: &Api, id: &str) -> Result<ExitCode, String> {
 
 fn bar(cov: &Value) -> String {
     let width = 40usize;
-    let parts = [("safe", '#'), ("counterexample", 'x'), ("unresolved", '?'), ("failed", '!')];
+    let parts = [(Safe, '#'), (Counterexample, 'x'), (Unresolved, '?'), (Failed, '!')];
     let mut s = String::new();
-    for (name, ch) in parts {
-        let n = (fraction(cov, name) * width as f64).round() as usize;
+    for (status, ch) in parts {
+        let n = (fraction(cov, status) * width as f64).round() as usize;
         s.extend(std::iter::repeat_n(ch, n.min(width - s.len().min(width))));
     }
     while s.len() < width {
         s.push('.');
     }
-    let pending = fraction(cov, "pending") + fraction(cov, "leased");
+    let pending = fraction(cov, Pending) + fraction(cov, Leased);
     format!(
         "[{s}] safe {:.1}%  counterexample {:.1}%  unresolved {:.1}%  pending {:.1}%",
-        100.0 * fraction(cov, "safe"),
-        100.0 * fraction(cov, "counterexample"),
-        100.0 * fraction(cov, "unresolved"),
+        100.0 * fraction(cov, Safe),
+        100.0 * fraction(cov, Counterexample),
+        100.0 * fraction(cov, Unresolved),
         100.0 * pending
     )
 }
@@ -226,7 +228,7 @@ fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String>
                     }
                     let _ = std::io::stderr().flush();
                 }
-                if state != "running" && state != "paused" {
+                if !CampaignState::parse(&state).is_some_and(CampaignState::is_open) {
                     if show {
                         if tty {
                             eprintln!();
@@ -259,9 +261,9 @@ fn gate(
         return Err("--min-safe must be a fraction between 0 and 1".into());
     }
     let cov = wait(api, id, interval, false)?;
-    let safe = fraction(&cov, "safe");
+    let safe = fraction(&cov, Safe);
     let state = cov["state"].as_str().unwrap_or("?");
-    if state != "done" {
+    if state != CampaignState::Done.as_str() {
         return Err(format!("campaign ended as '{state}', not done"));
     }
     let mut pass = true;
