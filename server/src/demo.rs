@@ -60,6 +60,10 @@ pub struct DemoOptions {
     /// Engine threads per worker process.
     #[arg(long, default_value_t = 1)]
     pub threads: usize,
+    /// The worker binary to spawn (default: `tessera-worker` beside this binary, where
+    /// `cargo build -p tessera-server -p tessera-worker` puts it).
+    #[arg(long, env = "TESSERA_WORKER_BIN")]
+    pub worker_bin: Option<PathBuf>,
     /// Cap on the scenarios' refinement depth, so the demo ends in minutes.
     #[arg(long, default_value_t = 10)]
     pub max_depth: u32,
@@ -89,6 +93,8 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         let known: Vec<&str> = SCENARIOS.iter().map(|(name, _, _)| *name).collect();
         anyhow::bail!("--only: no demo scenario named '{unknown}' (there are: {})", known.join(", "));
     }
+    // Before anything is started: the workers are a binary of their own.
+    let worker_exe = worker_binary(&opts)?;
     std::fs::create_dir_all(&opts.dir)?;
     write_scenarios(&opts.dir)?;
     let mut config = Config::for_tests(opts.dir.join("tessera.sqlite"));
@@ -147,7 +153,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         ids.push((name.to_string(), id));
     }
 
-    let mut workers = spawn_workers(&opts, &url, &worker_token)?;
+    let mut workers = spawn_workers(&worker_exe, &opts, &url, &worker_token)?;
     println!(
         "server at {url} — dashboard {url}/dashboard, API under {url}/api/v1, admin token in {}",
         opts.dir.join("admin.token").display()
@@ -260,13 +266,28 @@ fn write_scenarios(dir: &Path) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn spawn_workers(opts: &DemoOptions, url: &str, token: &str) -> anyhow::Result<Vec<Child>> {
-    let exe = std::env::current_exe()?;
+/// The `tessera-worker` binary the demo runs: `--worker-bin`, else the one beside this
+/// binary.
+fn worker_binary(opts: &DemoOptions) -> anyhow::Result<PathBuf> {
+    let exe = match &opts.worker_bin {
+        Some(p) => p.clone(),
+        None => std::env::current_exe()?.with_file_name(format!("tessera-worker{}", std::env::consts::EXE_SUFFIX)),
+    };
+    anyhow::ensure!(
+        exe.is_file(),
+        "no worker binary at {}: build it beside the server (cargo build --release -p tessera-server -p tessera-worker) \
+         or name it with --worker-bin",
+        exe.display()
+    );
+    Ok(exe)
+}
+
+fn spawn_workers(exe: &Path, opts: &DemoOptions, url: &str, token: &str) -> anyhow::Result<Vec<Child>> {
     let mut out = Vec::new();
     for i in 0..opts.workers {
         let log = std::fs::File::create(opts.dir.join(format!("worker-{i}.log")))?;
-        let child = Command::new(&exe)
-            .args(["worker", "--server", url, "--threads", &opts.threads.to_string(), "--name", &format!("demo-{i}")])
+        let child = Command::new(exe)
+            .args(["run", "--server", url, "--threads", &opts.threads.to_string(), "--name", &format!("demo-{i}")])
             .env("TESSERA_TOKEN", token)
             .stdin(Stdio::null())
             .stdout(log.try_clone()?)
