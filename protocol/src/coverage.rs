@@ -2,6 +2,12 @@
 
 use serde::{Deserialize, Serialize};
 
+/// What the coverage answer (`counterexample_note`), the reports and the follow-up
+/// diff say of the `counterexample` status.
+pub const COUNTEREXAMPLE_NOTE: &str = "counterexample: the volume of leaf cells that each hold a re-checked \
+counterexample, an upper bound on the unsafe initial states in those cells and not a measure of them (more \
+may lie in unresolved, failed or open cells)";
+
 /// One status's share of a campaign's envelope (`statuses.<api name>` in
 /// `GET /api/v1/campaigns/{id}/coverage`). Volumes are integers: a cell at depth `d`
 /// of a campaign with `max_depth` D has volume 2^(D − d), the envelope 2^D.

@@ -8,7 +8,7 @@ use crate::dashboard;
 use crate::error::{ApiError, ApiResult};
 use crate::leases::{self, QueueLimits};
 use crate::metrics::Metrics;
-use crate::openapi;
+use crate::openapi::{self, BodyKind, RouteDoc};
 use crate::store::Store;
 use axum::body::Bytes;
 use axum::extract::{DefaultBodyLimit, FromRequest, FromRequestParts, MatchedPath, Request, State};
@@ -36,7 +36,7 @@ pub struct AppState {
 
 impl AppState {
     pub fn new(store: Arc<Store>, config: Config) -> AppState {
-        let access = routes().into_iter().map(|r| ((r.method.clone(), r.path.to_string()), r.access)).collect();
+        let access = routes().into_iter().map(|r| ((r.doc.method, r.doc.path.to_string()), r.doc.access)).collect();
         AppState { store, config: Arc::new(config), metrics: Arc::new(Metrics::default()), access: Arc::new(access) }
     }
     pub fn limits(&self) -> QueueLimits {
@@ -49,27 +49,10 @@ impl AppState {
     }
 }
 
-/// Kind of request body a route takes (for the OpenAPI document).
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum BodyKind {
-    None,
-    /// A JSON document of the named schema.
-    Json(&'static str),
-    /// Raw bytes (a model).
-    Binary,
-}
-
-/// One route: method, path (axum syntax, `{param}`), who may call it, and docs.
+/// One route: what the OpenAPI document says of it, and its handler.
 #[derive(Clone)]
 pub struct Route {
-    pub method: Method,
-    pub path: &'static str,
-    pub access: Access,
-    pub summary: &'static str,
-    pub query: &'static [(&'static str, &'static str)],
-    pub body: BodyKind,
-    /// Content type of the success answer.
-    pub produces: &'static str,
+    pub doc: RouteDoc,
     make: fn() -> MethodRouter<AppState>,
 }
 
@@ -87,7 +70,10 @@ pub fn routes() -> Vec<Route> {
              query: &'static [(&'static str, &'static str)],
              body: BodyKind,
              produces: &'static str,
-             make: fn() -> MethodRouter<AppState>| Route { method, path, access, summary, query, body, produces, make };
+             make: fn() -> MethodRouter<AppState>| Route {
+        doc: RouteDoc { method, path, access, summary, query, body, produces },
+        make,
+    };
     vec![
         r(Method::GET, "/", Public, "Dashboard: the campaign list (HTML; the page asks for a token)", &[], B::None, HTML, || get(dashboard::index)),
         r(Method::GET, "/dashboard", Public, "Dashboard: the campaign list (HTML)", &[], B::None, HTML, || get(dashboard::index)),
@@ -144,7 +130,7 @@ pub fn routes() -> Vec<Route> {
 pub fn router(state: AppState) -> Router {
     let mut router = Router::new();
     for r in routes() {
-        router = router.route(r.path, (r.make)());
+        router = router.route(r.doc.path, (r.make)());
     }
     router
         .route_layer(middleware::from_fn_with_state(state.clone(), authorize))
@@ -304,7 +290,7 @@ async fn metrics(State(st): State<AppState>) -> ApiResult<Response> {
 }
 
 async fn openapi_doc() -> Json<Value> {
-    Json(openapi::document(&routes()))
+    Json(openapi::document(routes().iter().map(|r| &r.doc)))
 }
 
 async fn upload_model(State(st): State<AppState>, RawBody(body): RawBody) -> ApiResult<Response> {

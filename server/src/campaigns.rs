@@ -10,14 +10,10 @@ use serde_json::{json, Value};
 use sha2::Digest;
 use sqlx::Row;
 use std::collections::HashMap;
-use tessera_protocol::{CampaignState, CellStatus, StatusCoverage};
+use crate::seed;
+use tessera_protocol::{CampaignState, CellStatus, StatusCoverage, COUNTEREXAMPLE_NOTE};
 use tessera_worker::caution::CAUTION;
 use tessera_worker::engine::spec::{self, NetworkShape};
-
-/// What the coverage answer and the reports say of the `counterexample` status.
-pub const COUNTEREXAMPLE_NOTE: &str = "counterexample: the volume of leaf cells that each hold a re-checked \
-counterexample, an upper bound on the unsafe initial states in those cells and not a measure of them (more \
-may lie in unresolved, failed or open cells)";
 
 /// Deepest uniform pre-split allowed at creation (2^16 leaves).
 pub const MAX_INITIAL_DEPTH: u32 = 16;
@@ -31,18 +27,6 @@ pub struct CreateOptions<'a> {
     /// Start from the leaves of this finished campaign instead of the root
     /// (see [`crate::followup`]).
     pub follow_up: Option<&'a str>,
-}
-
-/// A cell of a new campaign's initial tree.
-pub struct SeedCell {
-    pub id: String,
-    pub parent: Option<String>,
-    pub depth: u32,
-    pub cell: CellBox,
-    pub status: CellStatus,
-    pub split_dim: Option<i64>,
-    /// For a re-joined cell of a follow-up: where to cut it if it is not proven safe.
-    pub coarse_dim: Option<i64>,
 }
 
 /// Validate `body` as a spec whose networks are uploaded models, and create the
@@ -111,7 +95,7 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     }
     let nodes = match opts.follow_up {
         Some(prev) => crate::followup::seed(store, prev, &info, max_cells).await?,
-        None => uniform_tree(&info, initial),
+        None => seed::uniform_tree(&info, initial),
     };
 
     let mut w = store.write().await?;
@@ -172,44 +156,6 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     }
     w.commit().await?;
     get(store, &id).await
-}
-
-/// The root, then uniform cuts down to `initial` (widest relative dimension first).
-fn uniform_tree(info: &CampaignInfo, initial: u32) -> Vec<SeedCell> {
-    let mut nodes = vec![SeedCell {
-        id: uuid::Uuid::new_v4().to_string(),
-        parent: None,
-        depth: 0,
-        cell: info.split_envelope.clone(),
-        status: CellStatus::Pending,
-        split_dim: None,
-        coarse_dim: None,
-    }];
-    let mut frontier = vec![0usize];
-    for _ in 0..initial {
-        let mut next = Vec::new();
-        for k in frontier {
-            let Some(d) = refine::choose_dim(&nodes[k].cell, &info.split_envelope, None) else { continue };
-            let Some((a, b)) = refine::bisect(&nodes[k].cell, d) else { continue };
-            nodes[k].status = CellStatus::Split;
-            nodes[k].split_dim = Some(d as i64);
-            let (pid, depth) = (nodes[k].id.clone(), nodes[k].depth + 1);
-            for c in [a, b] {
-                next.push(nodes.len());
-                nodes.push(SeedCell {
-                    id: uuid::Uuid::new_v4().to_string(),
-                    parent: Some(pid.clone()),
-                    depth,
-                    cell: c,
-                    status: CellStatus::Pending,
-                    split_dim: None,
-                    coarse_dim: None,
-                });
-            }
-        }
-        frontier = next;
-    }
-    nodes
 }
 
 /// Check that `bytes` is a model, for upload.

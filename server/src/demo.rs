@@ -218,7 +218,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     }
     println!("dashboard: {url}/dashboard (log in with the token in {})", opts.dir.join("admin.token").display());
     println!("reports: {url}/api/v1/campaigns/<id>/report.md");
-    println!("{}.", campaigns::COUNTEREXAMPLE_NOTE);
+    println!("{}.", tessera_protocol::COUNTEREXAMPLE_NOTE);
     if opts.exit_when_done {
         stop_workers(&mut workers);
         server.stop().await?;

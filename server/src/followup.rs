@@ -9,7 +9,7 @@
 //! of two; otherwise (unsafe or inconclusive) it is cut there again, into exactly the
 //! earlier halves (see [`crate::leases::submit`]).
 
-use crate::campaigns::SeedCell;
+use crate::seed::SeedCell;
 use crate::diff::{self, TreeCell};
 use crate::error::{ApiError, ApiResult};
 use crate::refine;
@@ -260,7 +260,7 @@ pub async fn changes(store: &Store, id: &str, against: Option<&str>, rows: usize
             "no_longer_safe": named(&|f, t| f == Safe && t != Safe),
             "newly_safe": named(&|f, t| f != Safe && t == Safe),
         },
-        "note": format!("a volume counts a cell at depth d as 2^-d of the envelope; {}", crate::campaigns::COUNTEREXAMPLE_NOTE),
+        "note": format!("a volume counts a cell at depth d as 2^-d of the envelope; {}", tessera_protocol::COUNTEREXAMPLE_NOTE),
         "statuses": CellStatus::ALL,
         "split_states": split_states,
         "envelope": info.split_envelope,

@@ -1,15 +1,41 @@
-//! The OpenAPI 3 document, built from the same route table as the router.
+//! The OpenAPI 3 document, built from the same route table as the router: the table
+//! (`crate::api::routes`) holds a [`RouteDoc`] per route, defined here so that this
+//! module depends on nothing of the HTTP layer.
 
-use crate::api::{BodyKind, Route};
 use crate::auth::Access;
+use axum::http::Method;
 use serde_json::{json, Map, Value};
+
+/// Kind of request body a route takes.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum BodyKind {
+    None,
+    /// A JSON document of the named schema.
+    Json(&'static str),
+    /// Raw bytes (a model).
+    Binary,
+}
+
+/// One route as documented: method, path (axum syntax, `{param}`), who may call it,
+/// summary, query parameters and bodies.
+#[derive(Clone, Debug)]
+pub struct RouteDoc {
+    pub method: Method,
+    pub path: &'static str,
+    pub access: Access,
+    pub summary: &'static str,
+    pub query: &'static [(&'static str, &'static str)],
+    pub body: BodyKind,
+    /// Content type of the success answer.
+    pub produces: &'static str,
+}
 
 fn path_params(path: &str) -> Vec<String> {
     path.split('/').filter_map(|seg| seg.strip_prefix('{').and_then(|s| s.strip_suffix('}'))).map(String::from).collect()
 }
 
 /// An OpenAPI 3.0 document listing every route of `routes`.
-pub fn document(routes: &[Route]) -> Value {
+pub fn document<'a>(routes: impl IntoIterator<Item = &'a RouteDoc>) -> Value {
     let mut paths = Map::new();
     for r in routes {
         let mut params: Vec<Value> = path_params(r.path)
