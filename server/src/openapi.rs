@@ -105,3 +105,51 @@ pub fn document<'a>(routes: impl IntoIterator<Item = &'a RouteDoc>) -> Value {
         }
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use tessera_protocol::{ExtendRequest, LeaseRequest, ResultItem, SubmitRequest};
+
+    /// The keys of `v` serialised, leaving out nulls.
+    fn keys(v: impl serde::Serialize) -> Vec<String> {
+        let v = serde_json::to_value(v).unwrap();
+        let mut k: Vec<String> =
+            v.as_object().unwrap().iter().filter(|(_, x)| !x.is_null()).map(|(k, _)| k.clone()).collect();
+        k.sort();
+        k
+    }
+
+    /// The schema's property names and required names, sorted.
+    fn schema(v: &Value) -> (Vec<String>, Vec<String>) {
+        let mut props: Vec<String> = v["properties"].as_object().unwrap().keys().cloned().collect();
+        let mut req: Vec<String> = v["required"].as_array().unwrap().iter().map(|s| s.as_str().unwrap().to_string()).collect();
+        props.sort();
+        req.sort();
+        (props, req)
+    }
+
+    #[test]
+    fn request_schemas_match_the_protocol_types() {
+        let doc = document(std::iter::empty());
+        let s = &doc["components"]["schemas"];
+        let item = |full: bool| ResultItem {
+            lease_id: "l".into(),
+            cell_id: full.then(|| "c".into()),
+            result: json!({}),
+            elapsed_ms: full.then_some(1.0),
+        };
+        // Every field is a property; the fields that are always written are required.
+        let lease = |full: bool| LeaseRequest { max: 1, worker: full.then(|| "w".into()), campaign_id: full.then(|| "c".into()) };
+        assert_eq!(schema(&s["LeaseRequest"]), (keys(lease(true)), keys(lease(false))));
+        let ext = ExtendRequest { lease_ids: vec![] };
+        assert_eq!(schema(&s["ExtendRequest"]), (keys(&ext), keys(&ext)));
+        let submit = |full: bool| SubmitRequest {
+            worker: full.then(|| "w".into()),
+            engine_version: full.then(|| "0".into()),
+            results: vec![item(full)],
+        };
+        assert_eq!(schema(&s["SubmitRequest"]), (keys(submit(true)), keys(submit(false))));
+        assert_eq!(schema(&s["SubmitRequest"]["properties"]["results"]["items"]), (keys(item(true)), keys(item(false))));
+    }
+}

@@ -337,15 +337,17 @@ impl Deltas {
         }
         let mut done = Vec::new();
         let now = now_ms();
+        let open_statuses: Vec<&str> = CellStatus::ALL.into_iter().filter(|s| s.is_open()).map(CellStatus::as_str).collect();
+        let open_sql = format!(
+            "SELECT COALESCE(SUM(cells), 0) FROM campaign_counters WHERE campaign_id = ? AND status IN ({})",
+            vec!["?"; open_statuses.len()].join(", ")
+        );
         for c in touched {
-            let open: i64 = sqlx::query_scalar(
-                "SELECT COALESCE(SUM(cells), 0) FROM campaign_counters WHERE campaign_id = ? AND status IN (?, ?)",
-            )
-            .bind(&c)
-            .bind(CellStatus::Pending.as_str())
-            .bind(CellStatus::Leased.as_str())
-            .fetch_one(&mut **tx)
-            .await?;
+            let mut q = sqlx::query_scalar(&open_sql).bind(&c);
+            for s in &open_statuses {
+                q = q.bind(*s);
+            }
+            let open: i64 = q.fetch_one(&mut **tx).await?;
             if open == 0 {
                 let r = sqlx::query(
                     "UPDATE campaigns SET state = ?, finished_at = ?, updated_at = ? WHERE id = ? AND state IN (?, ?)",
