@@ -14,7 +14,7 @@ pub mod lease;
 pub mod result;
 pub mod status;
 
-pub use coverage::{StatusCoverage, COUNTEREXAMPLE_NOTE};
+pub use coverage::{Coverage, StatusCoverage, COUNTEREXAMPLE_NOTE};
 pub use lease::{
     ExtendAnswer, ItemAnswer, LeaseAnswer, ExtendRequest, LeaseRequest, LeasedCell, ReleaseAnswer,
 };

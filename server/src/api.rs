@@ -23,7 +23,7 @@ use serde_json::{json, Value};
 use std::collections::HashMap;
 use std::sync::Arc;
 use std::time::Instant;
-use tessera_protocol::{CampaignState, ExtendAnswer, LeaseAnswer, ExtendRequest, LeaseRequest, ReleaseAnswer, SubmitAnswer, SubmitRequest};
+use tessera_protocol::{CampaignState, Coverage, ExtendAnswer, LeaseAnswer, ExtendRequest, LeaseRequest, ReleaseAnswer, SubmitAnswer, SubmitRequest};
 
 /// Shared state of all handlers.
 #[derive(Clone)]
@@ -374,7 +374,7 @@ async fn cancel(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> 
     Ok(Json(campaigns::transition(&st.store, st.limits(), &id, "cancel").await?))
 }
 
-async fn coverage(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> {
+async fn coverage(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Coverage>> {
     Ok(Json(campaigns::coverage(&st.store, &id).await?))
 }
 

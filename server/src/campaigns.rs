@@ -11,7 +11,7 @@ use sha2::Digest;
 use sqlx::Row;
 use std::collections::HashMap;
 use crate::seed;
-use tessera_protocol::{CampaignState, CellStatus, StatusCoverage, COUNTEREXAMPLE_NOTE};
+use tessera_protocol::{CampaignState, CellStatus, Coverage, StatusCoverage, COUNTEREXAMPLE_NOTE};
 use tessera_worker::caution::CAUTION;
 use tessera_worker::engine::spec::{self, NetworkShape};
 
@@ -260,7 +260,7 @@ pub async fn transition(store: &Store, limits: QueueLimits, id: &str, action: &s
 
 /// Coverage: per-status cells and exact volume fractions, rates and an estimate of
 /// the time left. O(1) in the number of cells.
-pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
+pub async fn coverage(store: &Store, id: &str) -> ApiResult<Coverage> {
     let row = sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
         .bind(id)
         .fetch_optional(&store.pool)
@@ -269,7 +269,7 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
     let d = row.try_get::<i64, _>("max_depth")? as u32;
     let counts = store.counters(id).await?;
     let total = refine::volume(d, 0);
-    let mut statuses = serde_json::Map::new();
+    let mut statuses = std::collections::BTreeMap::new();
     let mut leaves = 0;
     let mut leaf_volume = 0;
     for s in CellStatus::LEAVES {
@@ -283,7 +283,7 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
             exact: format!("{v}/2^{d}"),
             reduced: refine::reduced_fraction(v, d),
         };
-        statuses.insert(s.api_name().to_string(), serde_json::to_value(sc).map_err(ApiError::internal)?);
+        statuses.insert(s.api_name().to_string(), sc);
     }
     let open: i64 = counts.iter().filter(|(s, _)| s.is_open()).map(|(_, c)| c.1).sum();
     let resolved = leaf_volume - open;
@@ -292,8 +292,9 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
     let last: Option<i64> = row.try_get("last_result_at")?;
     let created: i64 = row.try_get("created_at")?;
     let state: String = row.try_get("state")?;
-    let open_state = CampaignState::parse(&state).is_some_and(CampaignState::is_open);
-    let end = if open_state { now_ms() } else { last.unwrap_or(created) };
+    let state = CampaignState::parse(&state)
+        .ok_or_else(|| ApiError::internal(format!("campaign {id}: unknown stored state '{state}'")))?;
+    let end = if state.is_open() { now_ms() } else { last.unwrap_or(created) };
     let span_s = first.map(|f| (end - f) as f64 / 1000.0).filter(|s| *s > 0.0);
     let cells_per_second = span_s.map(|s| results as f64 / s);
     let volume_per_second = span_s.map(|s| resolved as f64 / total as f64 / s);
@@ -302,24 +303,26 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
         (Some(r), _) if r > 0.0 => Some(open as f64 / total as f64 / r),
         _ => None,
     };
-    Ok(json!({
-        "campaign_id": id,
-        "state": state,
-        "max_depth": d,
-        "total_volume": total,
-        "total_exact": format!("2^{d}"),
-        "statuses": statuses,
-        "leaves": leaves,
-        "split_cells": counts.get(&CellStatus::Split).map(|c| c.0).unwrap_or(0),
-        "leaf_volume_matches_total": leaf_volume == total,
-        "results": results,
-        "cells_per_second": cells_per_second,
-        "fraction_per_second": volume_per_second,
-        "estimated_seconds_remaining": eta,
-        "estimate_note": "time left = open volume / resolved volume per second since the first result; deeper cells resolve less volume each, so this is a rough estimate",
-        "counterexample_note": COUNTEREXAMPLE_NOTE,
-        "caution": CAUTION,
-    }))
+    Ok(Coverage {
+        campaign_id: id.to_string(),
+        state,
+        max_depth: d,
+        total_volume: total,
+        total_exact: format!("2^{d}"),
+        statuses,
+        leaves,
+        split_cells: counts.get(&CellStatus::Split).map(|c| c.0).unwrap_or(0),
+        leaf_volume_matches_total: leaf_volume == total,
+        results,
+        cells_per_second,
+        fraction_per_second: volume_per_second,
+        estimated_seconds_remaining: eta,
+        estimate_note: "time left = open volume / resolved volume per second since the first result; deeper cells \
+                        resolve less volume each, so this is a rough estimate"
+            .into(),
+        counterexample_note: COUNTEREXAMPLE_NOTE.into(),
+        caution: CAUTION.into(),
+    })
 }
 
 /// Cells of a campaign filtered by status and depth, in creation order, paginated
@@ -468,7 +471,7 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
         "horizon_periods": doc["horizon_periods"],
         "envelope": doc["envelope"],
         "split": doc["refinement"]["split"],
-        "coverage": cov,
+        "coverage": serde_json::to_value(&cov).map_err(ApiError::internal)?,
         "counterexamples": cex["counterexamples"],
         "changes": changes,
     }))

@@ -11,7 +11,7 @@ use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
-use tessera_protocol::{CampaignState, CellStatus};
+use tessera_protocol::{CellStatus, Coverage};
 use tessera_worker::caution::CAUTION;
 
 /// The demo scenarios, embedded: (folder, spec, [(file name, bytes)]).
@@ -167,8 +167,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         let mut line = format!("{:>6.0}s", started.elapsed().as_secs_f64());
         for (name, id) in &ids {
             let cov = campaigns::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
-            let state = cov["state"].as_str().unwrap_or("?");
-            all_done &= !CampaignState::parse(state).is_some_and(CampaignState::is_open);
+            all_done &= !cov.state.is_open();
             line.push_str(&format!(
                 "  {name}: safe {:.1}% counterexample {:.1}% unresolved {:.1}% open {:.1}%",
                 pct(&cov, Safe),
@@ -207,7 +206,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
             pct(&cov, Counterexample),
             pct(&cov, Unresolved),
             pct(&cov, Failed),
-            cov["results"].as_i64().unwrap_or(0)
+            cov.results
         );
         finals.push(format!(
             "{name}: safe={} counterexample={} unresolved={}",
@@ -236,20 +235,20 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn pct(cov: &Value, status: CellStatus) -> f64 {
-    100.0 * cov["statuses"][status.api_name()]["fraction"].as_f64().unwrap_or(0.0)
+fn pct(cov: &Coverage, status: CellStatus) -> f64 {
+    100.0 * cov.fraction(status)
 }
 
 /// The exact fraction of a status as a decimal with enough digits to be exact for the
 /// campaign's depth (a sum of multiples of 2^-depth has at most `depth` decimals).
-fn exact(cov: &Value, status: CellStatus) -> String {
+fn exact(cov: &Coverage, status: CellStatus) -> String {
     exact_sum(cov, &[status])
 }
 
-fn exact_sum(cov: &Value, statuses: &[CellStatus]) -> String {
-    let depth = cov["max_depth"].as_u64().unwrap_or(0) as usize;
-    let total = cov["total_volume"].as_f64().unwrap_or(1.0);
-    let v: f64 = statuses.iter().map(|s| cov["statuses"][s.api_name()]["volume"].as_f64().unwrap_or(0.0)).sum();
+fn exact_sum(cov: &Coverage, statuses: &[CellStatus]) -> String {
+    let depth = cov.max_depth as usize;
+    let total = cov.total_volume as f64;
+    let v: f64 = statuses.iter().map(|s| cov.volume(*s) as f64).sum();
     // v / 2^depth is exact in f64 for depth ≤ 60 and v < 2^53; print all its digits.
     format!("{:.*}", depth.max(1), v / total)
 }
