@@ -8,6 +8,8 @@ use std::io::{IsTerminal, Write};
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::Duration;
+use tessera_protocol::{CampaignState, Coverage};
+use tessera_protocol::CellStatus::{Counterexample, Failed, Leased, Pending, Safe, Unresolved};
 use tessera_engine::caution::CAUTION_LINE;
 use tessera_worker::client::api::{Api, ApiError};
 use tessera_engine::spec;
@@ -156,68 +158,55 @@ fn describe(e: ApiError) -> String {
     e.to_string()
 }
 
-fn fraction(cov: &Value, status: &str) -> f64 {
-    cov["statuses"][status]["fraction"].as_f64().unwrap_or(0.0)
-}
 
 fn status(api: &Api, id: &str) -> Result<ExitCode, String> {
-    let cov: Value = api.get_json(&format!("/api/v1/campaigns/{id}/coverage")).map_err(describe)?;
-    println!("campaign {id}: {}", cov["state"].as_str().unwrap_or("?"));
+    let cov: Coverage = api.get_json(&format!("/api/v1/campaigns/{id}/coverage")).map_err(describe)?;
+    println!("campaign {id}: {}", cov.state.as_str());
     println!("{:<12} {:>10} {:>12}  exact", "status", "cells", "fraction");
-    if let Some(map) = cov["statuses"].as_object() {
-        for (s, v) in map {
-            println!(
-                "{:<12} {:>10} {:>11.4}%  {}",
-                s,
-                v["cells"].as_u64().unwrap_or(0),
-                100.0 * v["fraction"].as_f64().unwrap_or(0.0),
-                v["exact"].as_str().unwrap_or("")
-            );
-        }
+    for (s, v) in &cov.statuses {
+        println!("{:<12} {:>10} {:>11.4}%  {}", s, v.cells, 100.0 * v.fraction, v.exact);
     }
-    if let Some(r) = cov["cells_per_second"].as_f64() {
+    if let Some(r) = cov.cells_per_second {
         println!("{r:.1} cells/s");
     }
-    if let Some(eta) = cov["estimated_seconds_remaining"].as_f64() {
+    if let Some(eta) = cov.estimated_seconds_remaining {
         println!("about {eta:.0} s left");
     }
-    if let Some(note) = cov["counterexample_note"].as_str() {
-        println!("{note}");
-    }
+    println!("{}", cov.counterexample_note);
     println!("{CAUTION_LINE}");
     Ok(ExitCode::SUCCESS)
 }
 
-fn bar(cov: &Value) -> String {
+fn bar(cov: &Coverage) -> String {
     let width = 40usize;
-    let parts = [("safe", '#'), ("counterexample", 'x'), ("unresolved", '?'), ("failed", '!')];
+    let parts = [(Safe, '#'), (Counterexample, 'x'), (Unresolved, '?'), (Failed, '!')];
     let mut s = String::new();
-    for (name, ch) in parts {
-        let n = (fraction(cov, name) * width as f64).round() as usize;
+    for (status, ch) in parts {
+        let n = (cov.fraction(status) * width as f64).round() as usize;
         s.extend(std::iter::repeat_n(ch, n.min(width - s.len().min(width))));
     }
     while s.len() < width {
         s.push('.');
     }
-    let pending = fraction(cov, "pending") + fraction(cov, "leased");
+    let pending = cov.fraction(Pending) + cov.fraction(Leased);
     format!(
         "[{s}] safe {:.1}%  counterexample {:.1}%  unresolved {:.1}%  pending {:.1}%",
-        100.0 * fraction(cov, "safe"),
-        100.0 * fraction(cov, "counterexample"),
-        100.0 * fraction(cov, "unresolved"),
+        100.0 * cov.fraction(Safe),
+        100.0 * cov.fraction(Counterexample),
+        100.0 * cov.fraction(Unresolved),
         100.0 * pending
     )
 }
 
 /// Poll until the campaign is no longer running or paused; returns the last coverage.
-fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String> {
+fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Coverage, String> {
     let tty = std::io::stderr().is_terminal();
     let mut failures = 0;
     loop {
-        match api.get_json::<Value>(&format!("/api/v1/campaigns/{id}/coverage")) {
+        match api.get_json::<Coverage>(&format!("/api/v1/campaigns/{id}/coverage")) {
             Ok(cov) => {
                 failures = 0;
-                let state = cov["state"].as_str().unwrap_or("?").to_string();
+                let state = cov.state.as_str();
                 if show {
                     if tty {
                         eprint!("\r{} {state}   ", bar(&cov));
@@ -226,7 +215,7 @@ fn wait(api: &Api, id: &str, interval: f64, show: bool) -> Result<Value, String>
                     }
                     let _ = std::io::stderr().flush();
                 }
-                if state != "running" && state != "paused" {
+                if !cov.state.is_open() {
                     if show {
                         if tty {
                             eprintln!();
@@ -259,10 +248,9 @@ fn gate(
         return Err("--min-safe must be a fraction between 0 and 1".into());
     }
     let cov = wait(api, id, interval, false)?;
-    let safe = fraction(&cov, "safe");
-    let state = cov["state"].as_str().unwrap_or("?");
-    if state != "done" {
-        return Err(format!("campaign ended as '{state}', not done"));
+    let safe = cov.fraction(Safe);
+    if cov.state != CampaignState::Done {
+        return Err(format!("campaign ended as '{}', not done", cov.state.as_str()));
     }
     let mut pass = true;
     if safe >= min_safe {

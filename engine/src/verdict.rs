@@ -3,16 +3,9 @@
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 
-#[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, Eq)]
-#[serde(rename_all = "snake_case")]
-pub enum VerdictKind {
-    /// Proof: no trajectory from the cell reaches the unsafe set within the horizon.
-    Safe,
-    /// A re-checked counterexample starts in the cell.
-    Unsafe,
-    /// Neither; see `reason` and `split_hint`.
-    Inconclusive,
-}
+/// The verdict kind and the split hint are part of the wire contract: the server
+/// reads them (see `tessera_protocol::Outcome`).
+pub use tessera_protocol::{SplitHint, VerdictKind};
 
 /// Why a cell is inconclusive.
 #[derive(Clone, Copy, Debug, Serialize, Deserialize, PartialEq, Eq)]
@@ -30,15 +23,6 @@ pub enum Reason {
     /// The validated integrator could not enclose a period (step limit, blow-up or a
     /// value outside a function's domain).
     IntegrationFailed,
-}
-
-/// Where to cut an inconclusive cell: the state whose halving most reduces the
-/// uncertainty that blocked the proof, with a score in [0, 1] (the share of that
-/// uncertainty carried by the state; 0 when the fallback rule chose).
-#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
-pub struct SplitHint {
-    pub dim: String,
-    pub score: f64,
 }
 
 /// One sampled point of a counterexample trajectory.

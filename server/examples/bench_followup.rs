@@ -124,9 +124,9 @@ async fn run_campaign(
     let mut points = Vec::new();
     loop {
         let cov = campaigns::coverage(store, &id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
-        let safe = cov["statuses"]["safe"]["fraction"].as_f64().unwrap_or(0.0);
-        points.push((t0.elapsed().as_secs_f64(), safe, cov["results"].as_i64().unwrap_or(0)));
-        if cov["state"] != "running" {
+        let safe = cov.fraction(tessera_protocol::CellStatus::Safe);
+        points.push((t0.elapsed().as_secs_f64(), safe, cov.results));
+        if cov.state != tessera_protocol::CampaignState::Running {
             break;
         }
         tokio::time::sleep(Duration::from_millis(50)).await;

@@ -22,7 +22,8 @@ use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 use tessera_server::auth::Role;
-use tessera_server::leases::{self, SubmitItem};
+use tessera_protocol::ResultItem;
+use tessera_server::leases;
 use tessera_server::Config;
 
 /// The three verdict texts, made once.
@@ -238,9 +239,9 @@ async fn raw_run(seconds: u64, batch: u32, verdicts: &Verdicts) -> anyhow::Resul
         let (cells, _) = leases::lease(&store, limits, batch, "raw", None).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         t_lease += t.elapsed().as_secs_f64();
         let t = Instant::now();
-        let items: Vec<SubmitItem> = cells
+        let items: Vec<ResultItem> = cells
             .iter()
-            .map(|c| SubmitItem {
+            .map(|c| ResultItem {
                 lease_id: c.lease_id.clone(),
                 cell_id: Some(c.cell_id.clone()),
                 result: serde_json::from_str(verdicts.for_cell(&c.cell_id)).expect("verdict JSON"),

@@ -6,9 +6,9 @@ use crate::campaigns::{self, CreateOptions};
 use crate::config::{Config, MAX_JSON_BYTES, MAX_MODEL_BYTES};
 use crate::dashboard;
 use crate::error::{ApiError, ApiResult};
-use crate::leases::{self, QueueLimits, SubmitItem};
+use crate::leases::{self, QueueLimits};
 use crate::metrics::Metrics;
-use crate::openapi;
+use crate::openapi::{self, BodyKind, RouteDoc};
 use crate::store::Store;
 use axum::body::Bytes;
 use axum::extract::{DefaultBodyLimit, FromRequest, FromRequestParts, MatchedPath, Request, State};
@@ -23,6 +23,7 @@ use serde_json::{json, Value};
 use std::collections::HashMap;
 use std::sync::Arc;
 use std::time::Instant;
+use tessera_protocol::{CampaignState, Coverage, ExtendAnswer, LeaseAnswer, ExtendRequest, LeaseRequest, ReleaseAnswer, SubmitAnswer, SubmitRequest};
 
 /// Shared state of all handlers.
 #[derive(Clone)]
@@ -35,7 +36,7 @@ pub struct AppState {
 
 impl AppState {
     pub fn new(store: Arc<Store>, config: Config) -> AppState {
-        let access = routes().into_iter().map(|r| ((r.method.clone(), r.path.to_string()), r.access)).collect();
+        let access = routes().into_iter().map(|r| ((r.doc.method, r.doc.path.to_string()), r.doc.access)).collect();
         AppState { store, config: Arc::new(config), metrics: Arc::new(Metrics::default()), access: Arc::new(access) }
     }
     pub fn limits(&self) -> QueueLimits {
@@ -48,27 +49,10 @@ impl AppState {
     }
 }
 
-/// Kind of request body a route takes (for the OpenAPI document).
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum BodyKind {
-    None,
-    /// A JSON document of the named schema.
-    Json(&'static str),
-    /// Raw bytes (a model).
-    Binary,
-}
-
-/// One route: method, path (axum syntax, `{param}`), who may call it, and docs.
+/// One route: what the OpenAPI document says of it, and its handler.
 #[derive(Clone)]
 pub struct Route {
-    pub method: Method,
-    pub path: &'static str,
-    pub access: Access,
-    pub summary: &'static str,
-    pub query: &'static [(&'static str, &'static str)],
-    pub body: BodyKind,
-    /// Content type of the success answer.
-    pub produces: &'static str,
+    pub doc: RouteDoc,
     make: fn() -> MethodRouter<AppState>,
 }
 
@@ -86,7 +70,10 @@ pub fn routes() -> Vec<Route> {
              query: &'static [(&'static str, &'static str)],
              body: BodyKind,
              produces: &'static str,
-             make: fn() -> MethodRouter<AppState>| Route { method, path, access, summary, query, body, produces, make };
+             make: fn() -> MethodRouter<AppState>| Route {
+        doc: RouteDoc { method, path, access, summary, query, body, produces },
+        make,
+    };
     vec![
         r(Method::GET, "/", Public, "Dashboard: the campaign list (HTML; the page asks for a token)", &[], B::None, HTML, || get(dashboard::index)),
         r(Method::GET, "/dashboard", Public, "Dashboard: the campaign list (HTML)", &[], B::None, HTML, || get(dashboard::index)),
@@ -143,7 +130,7 @@ pub fn routes() -> Vec<Route> {
 pub fn router(state: AppState) -> Router {
     let mut router = Router::new();
     for r in routes() {
-        router = router.route(r.path, (r.make)());
+        router = router.route(r.doc.path, (r.make)());
     }
     router
         .route_layer(middleware::from_fn_with_state(state.clone(), authorize))
@@ -303,7 +290,7 @@ async fn metrics(State(st): State<AppState>) -> ApiResult<Response> {
 }
 
 async fn openapi_doc() -> Json<Value> {
-    Json(openapi::document(&routes()))
+    Json(openapi::document(routes().iter().map(|r| &r.doc)))
 }
 
 async fn upload_model(State(st): State<AppState>, RawBody(body): RawBody) -> ApiResult<Response> {
@@ -338,7 +325,7 @@ struct ListQuery {
 
 async fn list_campaigns(State(st): State<AppState>, Q(q): Q<ListQuery>) -> ApiResult<Json<Value>> {
     if let Some(s) = &q.state {
-        if !["running", "paused", "cancelled", "done"].contains(&s.as_str()) {
+        if CampaignState::parse(s).is_none() {
             return Err(ApiError::bad_request(format!("unknown state '{s}'")).field("state"));
         }
     }
@@ -387,7 +374,7 @@ async fn cancel(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> 
     Ok(Json(campaigns::transition(&st.store, st.limits(), &id, "cancel").await?))
 }
 
-async fn coverage(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> {
+async fn coverage(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Coverage>> {
     Ok(Json(campaigns::coverage(&st.store, &id).await?))
 }
 
@@ -498,20 +485,6 @@ async fn report_md(State(st): State<AppState>, P(id): P) -> ApiResult<Response> 
     Ok(([(header::CONTENT_TYPE, "text/markdown; charset=utf-8")], campaigns::report_markdown(&r)).into_response())
 }
 
-/// Body of `POST /api/v1/leases`.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct LeaseRequest {
-    /// Most cells wanted (1..=server's max_lease_batch; more is capped).
-    pub max: u32,
-    /// Free-form worker name, for the record.
-    #[serde(default)]
-    pub worker: Option<String>,
-    /// Lease only from this campaign.
-    #[serde(default)]
-    pub campaign_id: Option<String>,
-}
-
 fn worker_name(w: &Option<String>, field: &str) -> ApiResult<String> {
     let w = w.clone().unwrap_or_else(|| "anonymous".into());
     if w.len() > 200 {
@@ -520,7 +493,7 @@ fn worker_name(w: &Option<String>, field: &str) -> ApiResult<String> {
     Ok(w)
 }
 
-async fn lease(State(st): State<AppState>, JsonBody(req): JsonBody<LeaseRequest>) -> ApiResult<Json<Value>> {
+async fn lease(State(st): State<AppState>, JsonBody(req): JsonBody<LeaseRequest>) -> ApiResult<Json<LeaseAnswer>> {
     if req.max == 0 {
         return Err(ApiError::unprocessable("invalid_request", "max must be at least 1").field("max"));
     }
@@ -531,44 +504,26 @@ async fn lease(State(st): State<AppState>, JsonBody(req): JsonBody<LeaseRequest>
     st.metrics.lease_seconds.observe(t0.elapsed().as_secs_f64());
     Metrics::add(&st.metrics.leases_issued, cells.len() as u64);
     Metrics::add(&st.metrics.leases_reclaimed, stats.reclaimed);
-    Ok(Json(json!({"leases": cells, "lease_seconds": st.config.lease_seconds, "max_granted": max})))
+    Ok(Json(LeaseAnswer { leases: cells, lease_seconds: st.config.lease_seconds, max_granted: max }))
 }
 
-/// Body of `POST /api/v1/leases/extend`.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct ExtendRequest {
-    pub lease_ids: Vec<String>,
-}
-
-async fn extend(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendRequest>) -> ApiResult<Json<Value>> {
+async fn extend(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendRequest>) -> ApiResult<Json<ExtendAnswer>> {
     if req.lease_ids.len() > 10_000 {
         return Err(ApiError::unprocessable("limit", "at most 10000 lease ids per request").field("lease_ids"));
     }
     let items = leases::extend(&st.store, st.limits(), &req.lease_ids).await?;
-    Ok(Json(json!({"items": items, "lease_seconds": st.config.lease_seconds})))
+    Ok(Json(ExtendAnswer { items, lease_seconds: st.config.lease_seconds }))
 }
 
-async fn release(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendRequest>) -> ApiResult<Json<Value>> {
+async fn release(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendRequest>) -> ApiResult<Json<ReleaseAnswer>> {
     if req.lease_ids.len() > 10_000 {
         return Err(ApiError::unprocessable("limit", "at most 10000 lease ids per request").field("lease_ids"));
     }
     let items = leases::release(&st.store, st.limits(), &req.lease_ids).await?;
-    Ok(Json(json!({"items": items})))
+    Ok(Json(ReleaseAnswer { items }))
 }
 
-/// Body of `POST /api/v1/results`.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct SubmitRequest {
-    #[serde(default)]
-    pub worker: Option<String>,
-    #[serde(default)]
-    pub engine_version: Option<String>,
-    pub results: Vec<SubmitItem>,
-}
-
-async fn submit(State(st): State<AppState>, JsonBody(req): JsonBody<SubmitRequest>) -> ApiResult<Json<Value>> {
+async fn submit(State(st): State<AppState>, JsonBody(req): JsonBody<SubmitRequest>) -> ApiResult<Json<SubmitAnswer>> {
     if req.results.len() > 10_000 {
         return Err(ApiError::unprocessable("limit", "at most 10000 results per request").field("results"));
     }
@@ -582,7 +537,7 @@ async fn submit(State(st): State<AppState>, JsonBody(req): JsonBody<SubmitReques
     Metrics::add(&st.metrics.results_accepted, stats.accepted);
     Metrics::add(&st.metrics.results_rejected, stats.rejected);
     Metrics::add(&st.metrics.cells_created, stats.cells_created);
-    Ok(Json(json!({"items": items, "accepted": stats.accepted, "rejected": stats.rejected})))
+    Ok(Json(SubmitAnswer { items, accepted: stats.accepted, rejected: stats.rejected }))
 }
 
 #[derive(Deserialize)]

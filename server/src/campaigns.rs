@@ -5,19 +5,15 @@ use crate::error::{ApiError, ApiResult};
 use crate::leases::{self, QueueLimits};
 use crate::model_check;
 use crate::refine::{self, CellBox};
-use crate::store::{self, now_ms, CampaignInfo, Deltas, Store, ALL_STATUSES, LEAF_STATUSES, SHOWN_LEAF_STATUSES, SHOWN_STATUSES};
-use serde::Serialize;
+use crate::store::{self, now_ms, CampaignInfo, Deltas, Store};
 use serde_json::{json, Value};
 use sha2::Digest;
 use sqlx::Row;
 use std::collections::HashMap;
+use crate::seed;
+use tessera_protocol::{CampaignState, CellStatus, Coverage, StatusCoverage, COUNTEREXAMPLE_NOTE};
 use tessera_engine::caution::CAUTION;
 use tessera_engine::spec::{self, NetworkShape};
-
-/// What the coverage answer and the reports say of the `counterexample` status.
-pub const COUNTEREXAMPLE_NOTE: &str = "counterexample: the volume of leaf cells that each hold a re-checked \
-counterexample, an upper bound on the unsafe initial states in those cells and not a measure of them (more \
-may lie in unresolved, failed or open cells)";
 
 /// Deepest uniform pre-split allowed at creation (2^16 leaves).
 pub const MAX_INITIAL_DEPTH: u32 = 16;
@@ -31,18 +27,6 @@ pub struct CreateOptions<'a> {
     /// Start from the leaves of this finished campaign instead of the root
     /// (see [`crate::followup`]).
     pub follow_up: Option<&'a str>,
-}
-
-/// A cell of a new campaign's initial tree.
-pub struct SeedCell {
-    pub id: String,
-    pub parent: Option<String>,
-    pub depth: u32,
-    pub cell: CellBox,
-    pub status: &'static str,
-    pub split_dim: Option<i64>,
-    /// For a re-joined cell of a follow-up: where to cut it if it is not proven safe.
-    pub coarse_dim: Option<i64>,
 }
 
 /// Validate `body` as a spec whose networks are uploaded models, and create the
@@ -111,18 +95,19 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     }
     let nodes = match opts.follow_up {
         Some(prev) => crate::followup::seed(store, prev, &info, max_cells).await?,
-        None => uniform_tree(&info, initial),
+        None => seed::uniform_tree(&info, initial),
     };
 
     let mut w = store.write().await?;
     sqlx::query(
         "INSERT INTO campaigns (id, name, spec_json, spec_hash, state, priority, max_depth, created_at, updated_at, follow_up_of)
-         VALUES (?, ?, ?, ?, 'running', ?, ?, ?, ?, ?)",
+         VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
     )
     .bind(&id)
     .bind(&spec.doc.name)
     .bind(&canonical)
     .bind(&hash)
+    .bind(CampaignState::Running.as_str())
     .bind(opts.priority)
     .bind(spec.max_depth as i64)
     .bind(now)
@@ -130,19 +115,19 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     .bind(opts.follow_up)
     .execute(&mut *w.tx)
     .await?;
-    let mut counts: HashMap<&str, (i64, i64)> = ALL_STATUSES.iter().map(|s| (*s, (0, 0))).collect();
+    let mut counts: HashMap<CellStatus, (i64, i64)> = CellStatus::ALL.iter().map(|s| (*s, (0, 0))).collect();
     for n in &nodes {
         let e = counts.entry(n.status).or_insert((0, 0));
         e.0 += 1;
-        if n.status != "split" {
+        if n.status.is_leaf() {
             e.1 += refine::volume(spec.max_depth, n.depth);
         }
     }
-    for s in ALL_STATUSES {
-        let (c, v) = counts[s];
+    for s in CellStatus::ALL {
+        let (c, v) = counts[&s];
         sqlx::query("INSERT INTO campaign_counters (campaign_id, status, cells, volume) VALUES (?, ?, ?, ?)")
             .bind(&id)
-            .bind(s)
+            .bind(s.as_str())
             .bind(c)
             .bind(v)
             .execute(&mut *w.tx)
@@ -161,7 +146,7 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
                 .bind(n.parent.clone())
                 .bind(n.depth as i64)
                 .bind(refine::encode_box(&n.cell))
-                .bind(n.status)
+                .bind(n.status.as_str())
                 .bind(n.split_dim)
                 .bind(n.coarse_dim)
                 .bind(now)
@@ -173,52 +158,14 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
     get(store, &id).await
 }
 
-/// The root, then uniform cuts down to `initial` (widest relative dimension first).
-fn uniform_tree(info: &CampaignInfo, initial: u32) -> Vec<SeedCell> {
-    let mut nodes = vec![SeedCell {
-        id: uuid::Uuid::new_v4().to_string(),
-        parent: None,
-        depth: 0,
-        cell: info.split_envelope.clone(),
-        status: "pending",
-        split_dim: None,
-        coarse_dim: None,
-    }];
-    let mut frontier = vec![0usize];
-    for _ in 0..initial {
-        let mut next = Vec::new();
-        for k in frontier {
-            let Some(d) = refine::choose_dim(&nodes[k].cell, &info.split_envelope, None) else { continue };
-            let Some((a, b)) = refine::bisect(&nodes[k].cell, d) else { continue };
-            nodes[k].status = "split";
-            nodes[k].split_dim = Some(d as i64);
-            let (pid, depth) = (nodes[k].id.clone(), nodes[k].depth + 1);
-            for c in [a, b] {
-                next.push(nodes.len());
-                nodes.push(SeedCell {
-                    id: uuid::Uuid::new_v4().to_string(),
-                    parent: Some(pid.clone()),
-                    depth,
-                    cell: c,
-                    status: "pending",
-                    split_dim: None,
-                    coarse_dim: None,
-                });
-            }
-        }
-        frontier = next;
-    }
-    nodes
-}
-
 /// Check that `bytes` is a model, for upload.
 pub fn inspect_upload(bytes: &[u8]) -> ApiResult<NetworkShape> {
     model_check::inspect_model(bytes).map_err(|e| ApiError::unprocessable("invalid_model", e).field("body"))
 }
 
-fn campaign_json(r: &sqlx::sqlite::SqliteRow, counts: &HashMap<String, (i64, i64)>) -> ApiResult<Value> {
+fn campaign_json(r: &sqlx::sqlite::SqliteRow, counts: &HashMap<CellStatus, (i64, i64)>) -> ApiResult<Value> {
     let cells: serde_json::Map<String, Value> =
-        ALL_STATUSES.iter().map(|s| (store::shown(s).to_string(), json!(counts.get(*s).map(|c| c.0).unwrap_or(0)))).collect();
+        CellStatus::ALL.iter().map(|s| (s.api_name().to_string(), json!(counts.get(s).map(|c| c.0).unwrap_or(0)))).collect();
     Ok(json!({
         "id": r.try_get::<String, _>("id")?,
         "name": r.try_get::<String, _>("name")?,
@@ -284,22 +231,23 @@ pub async fn transition(store: &Store, limits: QueueLimits, id: &str, action: &s
         .fetch_optional(&mut *w.tx)
         .await?
         .ok_or_else(|| ApiError::not_found("campaign", id))?;
-    let (from, to): (&[&str], &str) = match action {
-        "pause" => (&["running"], "paused"),
-        "resume" => (&["paused"], "running"),
-        _ => (&["running", "paused"], "cancelled"),
+    use CampaignState::*;
+    let (from, to): (&[CampaignState], CampaignState) = match action {
+        "pause" => (&[Running], Paused),
+        "resume" => (&[Paused], Running),
+        _ => (&[Running, Paused], Cancelled),
     };
-    if state != to {
-        if !from.contains(&state.as_str()) {
+    if state != to.as_str() {
+        if !from.iter().any(|f| f.as_str() == state) {
             return Err(ApiError::conflict(format!("cannot {action} a campaign that is {state}")).field("state"));
         }
         sqlx::query("UPDATE campaigns SET state = ?, updated_at = ? WHERE id = ?")
-            .bind(to)
+            .bind(to.as_str())
             .bind(now_ms())
             .bind(id)
             .execute(&mut *w.tx)
             .await?;
-        if to == "cancelled" {
+        if to == Cancelled {
             let mut deltas = Deltas::default();
             leases::withdraw_leases(store, &mut w.tx, limits, id, &mut deltas).await?;
             // Counters only; a cancelled campaign is not marked done.
@@ -310,21 +258,9 @@ pub async fn transition(store: &Store, limits: QueueLimits, id: &str, action: &s
     get(store, id).await
 }
 
-#[derive(Serialize)]
-struct StatusCoverage {
-    cells: i64,
-    /// Integer volume: the fraction is volume / 2^max_depth.
-    volume: i64,
-    fraction: f64,
-    /// `volume/2^max_depth`, exact.
-    exact: String,
-    /// The same fraction in lowest terms.
-    reduced: String,
-}
-
 /// Coverage: per-status cells and exact volume fractions, rates and an estimate of
 /// the time left. O(1) in the number of cells.
-pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
+pub async fn coverage(store: &Store, id: &str) -> ApiResult<Coverage> {
     let row = sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
         .bind(id)
         .fetch_optional(&store.pool)
@@ -333,11 +269,11 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
     let d = row.try_get::<i64, _>("max_depth")? as u32;
     let counts = store.counters(id).await?;
     let total = refine::volume(d, 0);
-    let mut statuses = serde_json::Map::new();
+    let mut statuses = std::collections::BTreeMap::new();
     let mut leaves = 0;
     let mut leaf_volume = 0;
-    for s in LEAF_STATUSES {
-        let (c, v) = counts.get(s).copied().unwrap_or((0, 0));
+    for s in CellStatus::LEAVES {
+        let (c, v) = counts.get(&s).copied().unwrap_or((0, 0));
         leaves += c;
         leaf_volume += v;
         let sc = StatusCoverage {
@@ -347,17 +283,18 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
             exact: format!("{v}/2^{d}"),
             reduced: refine::reduced_fraction(v, d),
         };
-        statuses.insert(store::shown(s).to_string(), serde_json::to_value(sc).map_err(ApiError::internal)?);
+        statuses.insert(s.api_name().to_string(), sc);
     }
-    let vol = |s: &str| counts.get(s).map(|c| c.1).unwrap_or(0);
-    let open = vol("pending") + vol("leased");
+    let open: i64 = counts.iter().filter(|(s, _)| s.is_open()).map(|(_, c)| c.1).sum();
     let resolved = leaf_volume - open;
     let results: i64 = row.try_get("results_count")?;
     let first: Option<i64> = row.try_get("first_result_at")?;
     let last: Option<i64> = row.try_get("last_result_at")?;
     let created: i64 = row.try_get("created_at")?;
     let state: String = row.try_get("state")?;
-    let end = if state == "running" || state == "paused" { now_ms() } else { last.unwrap_or(created) };
+    let state = CampaignState::parse(&state)
+        .ok_or_else(|| ApiError::internal(format!("campaign {id}: unknown stored state '{state}'")))?;
+    let end = if state.is_open() { now_ms() } else { last.unwrap_or(created) };
     let span_s = first.map(|f| (end - f) as f64 / 1000.0).filter(|s| *s > 0.0);
     let cells_per_second = span_s.map(|s| results as f64 / s);
     let volume_per_second = span_s.map(|s| resolved as f64 / total as f64 / s);
@@ -366,24 +303,26 @@ pub async fn coverage(store: &Store, id: &str) -> ApiResult<Value> {
         (Some(r), _) if r > 0.0 => Some(open as f64 / total as f64 / r),
         _ => None,
     };
-    Ok(json!({
-        "campaign_id": id,
-        "state": state,
-        "max_depth": d,
-        "total_volume": total,
-        "total_exact": format!("2^{d}"),
-        "statuses": statuses,
-        "leaves": leaves,
-        "split_cells": counts.get("split").map(|c| c.0).unwrap_or(0),
-        "leaf_volume_matches_total": leaf_volume == total,
-        "results": results,
-        "cells_per_second": cells_per_second,
-        "fraction_per_second": volume_per_second,
-        "estimated_seconds_remaining": eta,
-        "estimate_note": "time left = open volume / resolved volume per second since the first result; deeper cells resolve less volume each, so this is a rough estimate",
-        "counterexample_note": COUNTEREXAMPLE_NOTE,
-        "caution": CAUTION,
-    }))
+    Ok(Coverage {
+        campaign_id: id.to_string(),
+        state,
+        max_depth: d,
+        total_volume: total,
+        total_exact: format!("2^{d}"),
+        statuses,
+        leaves,
+        split_cells: counts.get(&CellStatus::Split).map(|c| c.0).unwrap_or(0),
+        leaf_volume_matches_total: leaf_volume == total,
+        results,
+        cells_per_second,
+        fraction_per_second: volume_per_second,
+        estimated_seconds_remaining: eta,
+        estimate_note: "time left = open volume / resolved volume per second since the first result; deeper cells \
+                        resolve less volume each, so this is a rough estimate"
+            .into(),
+        counterexample_note: COUNTEREXAMPLE_NOTE.into(),
+        caution: CAUTION.into(),
+    })
 }
 
 /// Cells of a campaign filtered by status and depth, in creation order, paginated
@@ -399,9 +338,13 @@ pub async fn cells(
     let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
     let status = match status {
         None => None,
-        Some(s) => Some(store::stored(s).ok_or_else(|| {
-            ApiError::bad_request(format!("unknown status '{s}' (one of {})", SHOWN_STATUSES.join(", "))).field("status")
-        })?),
+        Some(s) => Some(
+            CellStatus::from_api_name(s)
+                .ok_or_else(|| {
+                    ApiError::bad_request(format!("unknown status '{s}' (one of {})", CellStatus::api_names())).field("status")
+                })?
+                .as_str(),
+        ),
     };
     let rows = sqlx::query(
         "SELECT c.rowid, c.id, c.parent_id, c.depth, c.box, c.status, c.split_dim, c.attempts, c.last_error,
@@ -431,7 +374,7 @@ pub async fn cells(
             "parent_id": r.try_get::<Option<String>, _>(2)?,
             "depth": r.try_get::<i64, _>(3)?,
             "box": info.full_box(&cell),
-            "status": store::shown(&r.try_get::<String, _>(5)?),
+            "status": store::cell_status(&r.try_get::<String, _>(5)?)?,
             "split_state": split_dim.and_then(|d| info.split.get(d as usize)).map(|&k| info.states[k].clone()),
             "attempts": r.try_get::<i64, _>(7)?,
             "expiries": r.try_get::<i64, _>(11)?,
@@ -469,7 +412,7 @@ pub async fn counterexamples(store: &Store, id: &str, limit: i64, after: i64) ->
             "cell_id": r.try_get::<String, _>(2)?,
             "depth": r.try_get::<i64, _>(6)?,
             "box": info.full_box(&cell),
-            "cell_status": store::shown(&r.try_get::<String, _>(8)?),
+            "cell_status": store::cell_status(&r.try_get::<String, _>(8)?)?,
             "reason": v.get("reason").cloned().unwrap_or(Value::Null),
             "counterexample": v.get("counterexample").cloned().unwrap_or(Value::Null),
             "worker": r.try_get::<String, _>(4)?,
@@ -528,7 +471,7 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
         "horizon_periods": doc["horizon_periods"],
         "envelope": doc["envelope"],
         "split": doc["refinement"]["split"],
-        "coverage": cov,
+        "coverage": serde_json::to_value(&cov).map_err(ApiError::internal)?,
         "counterexamples": cex["counterexamples"],
         "changes": changes,
     }))
@@ -591,7 +534,7 @@ pub fn report_markdown(r: &Value) -> String {
     let cov = &r["coverage"];
     let _ = writeln!(s, "## Coverage of the envelope (over the split states)\n");
     let _ = writeln!(s, "| Status | Cells | Fraction | Exact |\n|---|---:|---:|---|");
-    for st in SHOWN_LEAF_STATUSES {
+    for st in CellStatus::LEAVES.map(CellStatus::api_name) {
         let x = &cov["statuses"][st];
         let _ = writeln!(
             s,
@@ -666,7 +609,7 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
         parent: Option<String>,
         depth: u32,
         cell: CellBox,
-        status: String,
+        status: CellStatus,
         children: Vec<String>,
     }
     let mut cells: HashMap<String, C> = HashMap::with_capacity(rows.len());
@@ -684,7 +627,7 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
                 parent: r.try_get(1)?,
                 depth: r.try_get::<i64, _>(2)? as u32,
                 cell,
-                status: r.try_get(4)?,
+                status: store::cell_status(&r.try_get::<String, _>(4)?)?,
                 children: Vec::new(),
             },
         );
@@ -712,16 +655,16 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
             None => problems.push(format!("cell {k}: parent {p} missing")),
         }
     }
-    let mut counts: HashMap<String, (i64, i64)> = HashMap::new();
+    let mut counts: HashMap<CellStatus, (i64, i64)> = HashMap::new();
     let mut leaf_volume: i64 = 0;
     for (k, c) in &cells {
         let vol = refine::volume(info.max_depth, c.depth.min(info.max_depth));
-        let e = counts.entry(c.status.clone()).or_insert((0, 0));
+        let e = counts.entry(c.status).or_insert((0, 0));
         e.0 += 1;
-        if c.status != "split" {
+        if c.status.is_leaf() {
             e.1 += vol;
         }
-        if c.status == "split" {
+        if c.status == CellStatus::Split {
             if c.children.len() != 2 {
                 problems.push(format!("split cell {k} has {} children (expected 2)", c.children.len()));
                 continue;
@@ -736,7 +679,7 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
         } else {
             leaf_volume += vol;
             if !c.children.is_empty() {
-                problems.push(format!("leaf {k} ({}) has children", c.status));
+                problems.push(format!("leaf {k} ({}) has children", c.status.api_name()));
             }
         }
     }
@@ -746,12 +689,12 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
     }
     let stored = store.counters(id).await?;
     let mut counters_match = true;
-    for s in ALL_STATUSES {
-        let a = stored.get(s).copied().unwrap_or((0, 0));
-        let b = counts.get(s).copied().unwrap_or((0, 0));
+    for s in CellStatus::ALL {
+        let a = stored.get(&s).copied().unwrap_or((0, 0));
+        let b = counts.get(&s).copied().unwrap_or((0, 0));
         if a != b {
             counters_match = false;
-            problems.push(format!("counter '{s}' is {a:?} but a recount gives {b:?}"));
+            problems.push(format!("counter '{}' is {a:?} but a recount gives {b:?}", s.as_str()));
         }
     }
     let n_problems = problems.len();
@@ -760,7 +703,7 @@ pub async fn tiling_check(store: &Store, id: &str) -> ApiResult<Value> {
         "campaign_id": id,
         "ok": n_problems == 0,
         "cells": cells.len(),
-        "leaves": cells.values().filter(|c| c.status != "split").count(),
+        "leaves": cells.values().filter(|c| c.status.is_leaf()).count(),
         "leaf_volume": leaf_volume,
         "total_volume": total,
         "counters_match": counters_match,
@@ -784,14 +727,13 @@ pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, 
     let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
     let as_of = now_ms();
     // Two statements, so that each can use its index (cells_changed for `since_ms`).
+    let leaves_sql = format!(
+        "SELECT rowid, status, depth, box FROM cells
+         WHERE campaign_id = ?1 AND rowid > ?2 AND status != '{}' ORDER BY rowid LIMIT ?3",
+        CellStatus::Split.as_str()
+    );
     let rows = match since_ms {
-        None => sqlx::query(
-            "SELECT rowid, status, depth, box FROM cells
-             WHERE campaign_id = ?1 AND rowid > ?2 AND status != 'split' ORDER BY rowid LIMIT ?3",
-        )
-        .bind(id)
-        .bind(after)
-        .bind(limit),
+        None => sqlx::query(&leaves_sql).bind(id).bind(after).bind(limit),
         Some(since) => sqlx::query(
             "SELECT rowid, status, depth, box FROM cells INDEXED BY cells_changed
              WHERE campaign_id = ?1 AND updated_at >= ?2 AND rowid > ?3 ORDER BY rowid LIMIT ?4",
@@ -809,7 +751,7 @@ pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, 
         let rowid: i64 = r.try_get(0)?;
         last = Some(rowid);
         let status: String = r.try_get(1)?;
-        let code = ALL_STATUSES.iter().position(|s| *s == status).ok_or_else(|| ApiError::internal("unknown cell status"))?;
+        let code = CellStatus::parse(&status).ok_or_else(|| ApiError::internal("unknown cell status"))?.index();
         let b: Vec<u8> = r.try_get(3)?;
         let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal("corrupt box"))?;
         let mut row = Vec::with_capacity(3 + 2 * cell.len());
@@ -829,7 +771,7 @@ pub async fn leaves(store: &Store, id: &str, since_ms: Option<i64>, after: i64, 
         "states": info.states,
         "envelope": info.envelope,
         "split_states": split_states,
-        "statuses": SHOWN_STATUSES,
+        "statuses": CellStatus::ALL,
         "columns": "rowid, status index, depth, then lo and hi of each split state",
         "as_of_ms": as_of,
         "rows": out,
@@ -880,12 +822,16 @@ pub const MAX_HISTORY_POINTS: usize = 1000;
 /// equals the current coverage. Cells that were decided and later split (cells with a
 /// counterexample, cut further under `refine_unsafe`) count only through their children.
 pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value> {
+    const DECIDED: [CellStatus; 3] = [CellStatus::Safe, CellStatus::Counterexample, CellStatus::Unresolved];
     let info = store.info(id).await?.ok_or_else(|| ApiError::not_found("campaign", id))?;
     let rows = sqlx::query(
         "SELECT r.received_at, c.depth, c.status FROM cells c JOIN results r ON r.id = c.result_id
-         WHERE c.campaign_id = ? AND c.status IN ('safe', 'unsafe', 'unresolved') ORDER BY r.received_at",
+         WHERE c.campaign_id = ? AND c.status IN (?, ?, ?) ORDER BY r.received_at",
     )
     .bind(id)
+    .bind(DECIDED[0].as_str())
+    .bind(DECIDED[1].as_str())
+    .bind(DECIDED[2].as_str())
     .fetch_all(&store.pool)
     .await?;
     let d = info.max_depth;
@@ -893,7 +839,7 @@ pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value>
     let mut events: Vec<(i64, usize, i64)> = Vec::with_capacity(rows.len());
     for r in &rows {
         let status: String = r.try_get(2)?;
-        let k = ["safe", "unsafe", "unresolved"].iter().position(|s| *s == status).unwrap_or(0);
+        let k = DECIDED.iter().position(|s| s.as_str() == status).unwrap_or(0);
         events.push((r.try_get(0)?, k, refine::volume(d, r.try_get::<i64, _>(1)? as u32)));
     }
     let mut out = Vec::new();
@@ -908,8 +854,12 @@ pub async fn history(store: &Store, id: &str, points: usize) -> ApiResult<Value>
                 acc[events[i].1] += events[i].2;
                 i += 1;
             }
-            out.push(json!({"t_ms": t, "safe": acc[0] as f64 / total, "counterexample": acc[1] as f64 / total,
-                            "unresolved": acc[2] as f64 / total}));
+            let mut point = serde_json::Map::new();
+            point.insert("t_ms".into(), json!(t));
+            for (s, v) in DECIDED.iter().zip(acc) {
+                point.insert(s.api_name().into(), json!(v as f64 / total));
+            }
+            out.push(Value::Object(point));
             if first == last {
                 break;
             }

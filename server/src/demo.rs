@@ -11,6 +11,7 @@ use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::Duration;
+use tessera_protocol::{CellStatus, Coverage};
 use tessera_engine::caution::CAUTION;
 
 /// The demo scenarios, embedded: (folder, spec, [(file name, bytes)]).
@@ -59,6 +60,10 @@ pub struct DemoOptions {
     /// Engine threads per worker process.
     #[arg(long, default_value_t = 1)]
     pub threads: usize,
+    /// The worker binary to spawn (default: `tessera-worker` beside this binary, where
+    /// `cargo build -p tessera-server -p tessera-worker` puts it).
+    #[arg(long, env = "TESSERA_WORKER_BIN")]
+    pub worker_bin: Option<PathBuf>,
     /// Cap on the scenarios' refinement depth, so the demo ends in minutes.
     #[arg(long, default_value_t = 10)]
     pub max_depth: u32,
@@ -88,6 +93,8 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         let known: Vec<&str> = SCENARIOS.iter().map(|(name, _, _)| *name).collect();
         anyhow::bail!("--only: no demo scenario named '{unknown}' (there are: {})", known.join(", "));
     }
+    // Before anything is started: the workers are a binary of their own.
+    let worker_exe = worker_binary(&opts)?;
     std::fs::create_dir_all(&opts.dir)?;
     write_scenarios(&opts.dir)?;
     let mut config = Config::for_tests(opts.dir.join("tessera.sqlite"));
@@ -146,27 +153,27 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         ids.push((name.to_string(), id));
     }
 
-    let mut workers = spawn_workers(&opts, &url, &worker_token)?;
+    let mut workers = spawn_workers(&worker_exe, &opts, &url, &worker_token)?;
     println!(
         "server at {url} — dashboard {url}/dashboard, API under {url}/api/v1, admin token in {}",
         opts.dir.join("admin.token").display()
     );
     println!("{} worker processes × {} threads; logs in {}", opts.workers, opts.threads, opts.dir.display());
 
+    use CellStatus::*;
     let started = std::time::Instant::now();
     loop {
         let mut all_done = true;
         let mut line = format!("{:>6.0}s", started.elapsed().as_secs_f64());
         for (name, id) in &ids {
             let cov = campaigns::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
-            let state = cov["state"].as_str().unwrap_or("?");
-            all_done &= state != "running" && state != "paused";
+            all_done &= !cov.state.is_open();
             line.push_str(&format!(
                 "  {name}: safe {:.1}% counterexample {:.1}% unresolved {:.1}% open {:.1}%",
-                pct(&cov, "safe"),
-                pct(&cov, "counterexample"),
-                pct(&cov, "unresolved") + pct(&cov, "failed"),
-                pct(&cov, "pending") + pct(&cov, "leased")
+                pct(&cov, Safe),
+                pct(&cov, Counterexample),
+                pct(&cov, Unresolved) + pct(&cov, Failed),
+                pct(&cov, Pending) + pct(&cov, Leased)
             ));
         }
         println!("{line}");
@@ -195,22 +202,22 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         println!(
             "{:<10} {:>8.2}% {:>14.2}% {:>10.2}% {:>7.2}% {:>7}",
             name,
-            pct(&cov, "safe"),
-            pct(&cov, "counterexample"),
-            pct(&cov, "unresolved"),
-            pct(&cov, "failed"),
-            cov["results"].as_i64().unwrap_or(0)
+            pct(&cov, Safe),
+            pct(&cov, Counterexample),
+            pct(&cov, Unresolved),
+            pct(&cov, Failed),
+            cov.results
         );
         finals.push(format!(
             "{name}: safe={} counterexample={} unresolved={}",
-            exact(&cov, "safe"),
-            exact(&cov, "counterexample"),
-            exact_sum(&cov, &["unresolved", "failed"])
+            exact(&cov, Safe),
+            exact(&cov, Counterexample),
+            exact_sum(&cov, &[Unresolved, Failed])
         ));
     }
     println!("dashboard: {url}/dashboard (log in with the token in {})", opts.dir.join("admin.token").display());
     println!("reports: {url}/api/v1/campaigns/<id>/report.md");
-    println!("{}.", campaigns::COUNTEREXAMPLE_NOTE);
+    println!("{}.", tessera_protocol::COUNTEREXAMPLE_NOTE);
     if opts.exit_when_done {
         stop_workers(&mut workers);
         server.stop().await?;
@@ -228,20 +235,20 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn pct(cov: &Value, status: &str) -> f64 {
-    100.0 * cov["statuses"][status]["fraction"].as_f64().unwrap_or(0.0)
+fn pct(cov: &Coverage, status: CellStatus) -> f64 {
+    100.0 * cov.fraction(status)
 }
 
 /// The exact fraction of a status as a decimal with enough digits to be exact for the
 /// campaign's depth (a sum of multiples of 2^-depth has at most `depth` decimals).
-fn exact(cov: &Value, status: &str) -> String {
+fn exact(cov: &Coverage, status: CellStatus) -> String {
     exact_sum(cov, &[status])
 }
 
-fn exact_sum(cov: &Value, statuses: &[&str]) -> String {
-    let depth = cov["max_depth"].as_u64().unwrap_or(0) as usize;
-    let total = cov["total_volume"].as_f64().unwrap_or(1.0);
-    let v: f64 = statuses.iter().map(|s| cov["statuses"][*s]["volume"].as_f64().unwrap_or(0.0)).sum();
+fn exact_sum(cov: &Coverage, statuses: &[CellStatus]) -> String {
+    let depth = cov.max_depth as usize;
+    let total = cov.total_volume as f64;
+    let v: f64 = statuses.iter().map(|s| cov.volume(*s) as f64).sum();
     // v / 2^depth is exact in f64 for depth ≤ 60 and v < 2^53; print all its digits.
     format!("{:.*}", depth.max(1), v / total)
 }
@@ -258,13 +265,28 @@ fn write_scenarios(dir: &Path) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn spawn_workers(opts: &DemoOptions, url: &str, token: &str) -> anyhow::Result<Vec<Child>> {
-    let exe = std::env::current_exe()?;
+/// The `tessera-worker` binary the demo runs: `--worker-bin`, else the one beside this
+/// binary.
+fn worker_binary(opts: &DemoOptions) -> anyhow::Result<PathBuf> {
+    let exe = match &opts.worker_bin {
+        Some(p) => p.clone(),
+        None => std::env::current_exe()?.with_file_name(format!("tessera-worker{}", std::env::consts::EXE_SUFFIX)),
+    };
+    anyhow::ensure!(
+        exe.is_file(),
+        "no worker binary at {}: build it beside the server (cargo build --release -p tessera-server -p tessera-worker) \
+         or name it with --worker-bin",
+        exe.display()
+    );
+    Ok(exe)
+}
+
+fn spawn_workers(exe: &Path, opts: &DemoOptions, url: &str, token: &str) -> anyhow::Result<Vec<Child>> {
     let mut out = Vec::new();
     for i in 0..opts.workers {
         let log = std::fs::File::create(opts.dir.join(format!("worker-{i}.log")))?;
-        let child = Command::new(&exe)
-            .args(["worker", "--server", url, "--threads", &opts.threads.to_string(), "--name", &format!("demo-{i}")])
+        let child = Command::new(exe)
+            .args(["run", "--server", url, "--threads", &opts.threads.to_string(), "--name", &format!("demo-{i}")])
             .env("TESSERA_TOKEN", token)
             .stdin(Stdio::null())
             .stdout(log.try_clone()?)

@@ -13,6 +13,7 @@
 
 use crate::refine::{self, CellBox};
 use std::collections::BTreeMap;
+use tessera_protocol::CellStatus;
 
 /// Fixed denominator exponent of the accumulated volumes: an intersection of two
 /// cells of depth ≤ 60 each is at least `2^-120` of the envelope.
@@ -25,7 +26,7 @@ pub struct TreeCell {
     pub parent_id: Option<String>,
     pub depth: u32,
     pub cell: CellBox,
-    pub status: String,
+    pub status: CellStatus,
 }
 
 /// A tree with each cell's dyadic coordinates.
@@ -104,8 +105,8 @@ fn overlap(a: &[(u32, u64)], b: &[(u32, u64)]) -> bool {
 /// One piece of the diff: the intersection of a leaf of each campaign.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Piece {
-    pub from: String,
-    pub to: String,
+    pub from: CellStatus,
+    pub to: CellStatus,
     /// The piece's volume is `2^-exp` of the envelope.
     pub exp: u32,
     /// Its box over the split dimensions (per dimension, the finer of the two cells').
@@ -116,7 +117,7 @@ pub struct Piece {
 #[derive(Debug, Clone, Default)]
 pub struct Diff {
     /// (from, to) → (number of pieces, volume in units of `2^-120` of the envelope).
-    pub transitions: BTreeMap<(String, String), (u64, u128)>,
+    pub transitions: BTreeMap<(CellStatus, CellStatus), (u64, u128)>,
     /// The pieces, in walk order, at most the `keep` asked for.
     pub pieces: Vec<Piece>,
     /// Number of pieces in all.
@@ -165,7 +166,7 @@ pub fn diff(before: Vec<TreeCell>, after: Vec<TreeCell>, envelope: &[[f64; 2]], 
                 if exp > UNIT_EXP {
                     return Err("cells too deep to intersect exactly".into());
                 }
-                let (from, to) = (a.cells[al].status.clone(), b.cells[node].status.clone());
+                let (from, to) = (a.cells[al].status, b.cells[node].status);
                 if out.pieces.len() < keep {
                     let cell = ac
                         .iter()
@@ -173,7 +174,7 @@ pub fn diff(before: Vec<TreeCell>, after: Vec<TreeCell>, envelope: &[[f64; 2]], 
                         .enumerate()
                         .map(|(j, (x, y))| if x.0 >= y.0 { a.cells[al].cell[j] } else { b.cells[node].cell[j] })
                         .collect();
-                    out.pieces.push(Piece { from: from.clone(), to: to.clone(), exp, cell });
+                    out.pieces.push(Piece { from, to, exp, cell });
                 }
                 let e = out.transitions.entry((from, to)).or_insert((0, 0));
                 e.0 += 1;
@@ -199,7 +200,7 @@ mod tests {
     /// cuts from the root, built with `refine::bisect`.
     fn tree(env: &[[f64; 2]], leaves: &[(&[(usize, u8)], &str)]) -> Vec<TreeCell> {
         let mut cells: Vec<TreeCell> =
-            vec![TreeCell { id: "r".into(), parent_id: None, depth: 0, cell: env.to_vec(), status: "split".into() }];
+            vec![TreeCell { id: "r".into(), parent_id: None, depth: 0, cell: env.to_vec(), status: CellStatus::Split }];
         for (path, status) in leaves {
             let mut id = "r".to_string();
             for (n, &(d, side)) in path.iter().enumerate() {
@@ -208,18 +209,19 @@ mod tests {
                 for (s, half) in [(0u8, lo), (1u8, hi)] {
                     let cid = format!("{id}/{d}{s}");
                     if !cells.iter().any(|c| c.id == cid) {
-                        cells.push(TreeCell { id: cid, parent_id: Some(id.clone()), depth: n as u32 + 1, cell: half, status: "split".into() });
+                        cells.push(TreeCell { id: cid, parent_id: Some(id.clone()), depth: n as u32 + 1, cell: half, status: CellStatus::Split });
                     }
                 }
                 id = format!("{id}/{d}{side}");
             }
-            cells.iter_mut().find(|c| c.id == id).unwrap().status = status.to_string();
+            cells.iter_mut().find(|c| c.id == id).unwrap().status = CellStatus::parse(status).unwrap();
         }
         cells
     }
 
     fn vol(d: &Diff, from: &str, to: &str) -> (u128, u32) {
-        lowest_terms(d.transitions.get(&(from.to_string(), to.to_string())).map(|t| t.1).unwrap_or(0))
+        let key = (CellStatus::parse(from).unwrap(), CellStatus::parse(to).unwrap());
+        lowest_terms(d.transitions.get(&key).map(|t| t.1).unwrap_or(0))
     }
 
     #[test]
@@ -246,7 +248,7 @@ mod tests {
         assert_eq!(vol(&d, "safe", "unsafe"), (1, 2));
         assert_eq!(vol(&d, "safe", "safe"), (1, 2));
         assert_eq!(vol(&d, "unresolved", "safe"), (1, 1));
-        let p = d.pieces.iter().find(|p| p.from == "safe" && p.to == "unsafe").unwrap();
+        let p = d.pieces.iter().find(|p| p.from == CellStatus::Safe && p.to == CellStatus::Counterexample).unwrap();
         assert_eq!(p.cell, vec![[0.0, 0.5], [0.0, 0.5]]);
         // And backwards.
         let d = diff(b, a, &env, 0).unwrap();

@@ -9,16 +9,17 @@
 //! of two; otherwise (unsafe or inconclusive) it is cut there again, into exactly the
 //! earlier halves (see [`crate::leases::submit`]).
 
-use crate::campaigns::SeedCell;
+use crate::seed::SeedCell;
 use crate::diff::{self, TreeCell};
 use crate::error::{ApiError, ApiResult};
 use crate::refine;
-use crate::store::{self, CampaignInfo, Store, ALL_STATUSES, LEAF_STATUSES, SHOWN_STATUSES};
+use crate::store::{self, CampaignInfo, Store};
 use axum::http::StatusCode;
 use serde_json::{json, Value};
 use sqlx::Row;
 use std::collections::HashMap;
 use std::sync::Arc;
+use tessera_protocol::{CampaignState, CellStatus};
 
 /// Check that `next` covers the same envelope as `prev`, bit for bit, and is split
 /// over the same states in the same order. The error names the field that differs
@@ -65,7 +66,8 @@ pub async fn load_tree(store: &Store, id: &str) -> ApiResult<Vec<TreeCell>> {
         let id: String = r.try_get(0)?;
         let b: Vec<u8> = r.try_get(3)?;
         let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
-        out.push(TreeCell { id, parent_id: r.try_get(1)?, depth: r.try_get::<i64, _>(2)? as u32, cell, status: r.try_get(4)? });
+        let status = store::cell_status(&r.try_get::<String, _>(4)?)?;
+        out.push(TreeCell { id, parent_id: r.try_get(1)?, depth: r.try_get::<i64, _>(2)? as u32, cell, status });
     }
     Ok(out)
 }
@@ -79,7 +81,7 @@ async fn earlier(store: &Store, prev_id: &str, next: &CampaignInfo) -> ApiResult
     let Some(state) = state else {
         return Err(ApiError::unprocessable("invalid_request", format!("no campaign {prev_id} to follow up")).field("follow_up"));
     };
-    if state != "done" {
+    if state != CampaignState::Done.as_str() {
         return Err(ApiError::conflict(format!(
             "campaign {prev_id} is {state}: only a finished (done) campaign can be followed up"
         ))
@@ -135,7 +137,7 @@ pub async fn seed(store: &Store, prev_id: &str, next: &CampaignInfo, max_cells: 
             parent,
             depth: c.depth,
             cell: c.cell.clone(),
-            status: "pending",
+            status: CellStatus::Pending,
             split_dim: None,
             coarse_dim: None,
         };
@@ -145,11 +147,11 @@ pub async fn seed(store: &Store, prev_id: &str, next: &CampaignInfo, max_cells: 
             };
             let dim = refine::halves_of(&c.cell, &cells[x].cell, &cells[y].cell)
                 .ok_or_else(|| ApiError::internal(format!("children of cell {} are not its halves", c.id)))?;
-            let leaf_safe = |j: usize| children[j].is_empty() && cells[j].status == "safe";
+            let leaf_safe = |j: usize| children[j].is_empty() && cells[j].status == CellStatus::Safe;
             if leaf_safe(x) && leaf_safe(y) {
                 node.coarse_dim = Some(dim as i64);
             } else {
-                node.status = "split";
+                node.status = CellStatus::Split;
                 node.split_dim = Some(dim as i64);
                 // Lower half first, so that rows come in a stable order.
                 let (lo, hi) = if cells[x].cell[dim][0] <= cells[y].cell[dim][0] { (x, y) } else { (y, x) };
@@ -209,29 +211,28 @@ pub async fn changes(store: &Store, id: &str, against: Option<&str>, rows: usize
     let depth = prev.max_depth.max(info.max_depth);
 
     let mut transitions = Vec::new();
-    for from in LEAF_STATUSES {
-        for to in LEAF_STATUSES {
-            if let Some(&(n, units)) = d.transitions.get(&(from.to_string(), to.to_string())) {
+    for from in CellStatus::LEAVES {
+        for to in CellStatus::LEAVES {
+            if let Some(&(n, units)) = d.transitions.get(&(from, to)) {
                 let mut a = amount(units, depth, n);
-                a["from"] = json!(store::shown(from));
-                a["to"] = json!(store::shown(to));
+                a["from"] = json!(from);
+                a["to"] = json!(to);
                 transitions.push(a);
             }
         }
     }
-    let sum = |pred: &dyn Fn(&str, &str) -> bool| -> (u128, u64) {
-        d.transitions.iter().filter(|((f, t), _)| pred(f, t)).fold((0, 0), |acc, (_, &(n, u))| (acc.0 + u, acc.1 + n))
+    let sum = |pred: &dyn Fn(CellStatus, CellStatus) -> bool| -> (u128, u64) {
+        d.transitions.iter().filter(|((f, t), _)| pred(*f, *t)).fold((0, 0), |acc, (_, &(n, u))| (acc.0 + u, acc.1 + n))
     };
-    let named = |pred: &dyn Fn(&str, &str) -> bool| {
+    let named = |pred: &dyn Fn(CellStatus, CellStatus) -> bool| {
         let (u, n) = sum(pred);
         amount(u, depth, n)
     };
-    let status_index = |s: &str| ALL_STATUSES.iter().position(|x| *x == s).unwrap_or(0);
     let pieces: Vec<Value> = d
         .pieces
         .iter()
         .map(|p| {
-            let mut r = vec![json!(status_index(&p.from)), json!(status_index(&p.to)), json!(p.exp)];
+            let mut r = vec![json!(p.from.index()), json!(p.to.index()), json!(p.exp)];
             for [lo, hi] in &p.cell {
                 r.push(json!(lo));
                 r.push(json!(hi));
@@ -240,26 +241,27 @@ pub async fn changes(store: &Store, id: &str, against: Option<&str>, rows: usize
         })
         .collect();
     let split_states: Vec<&str> = info.split.iter().map(|&k| info.states[k].as_str()).collect();
+    use CellStatus::{Counterexample, Safe, Unresolved};
     Ok(json!({
         "campaign_id": id,
         "against": other,
         "follow_up_of": follow_up_of,
         "state": state,
         "against_state": prev_state,
-        "final": state == "done" && prev_state == "done",
+        "final": state == CampaignState::Done.as_str() && prev_state == CampaignState::Done.as_str(),
         "max_depth": depth,
         "transitions": transitions,
         "summary": {
-            "safe_to_counterexample": named(&|f, t| f == "safe" && t == "unsafe"),
-            "safe_to_unresolved": named(&|f, t| f == "safe" && t == "unresolved"),
-            "unresolved_to_safe": named(&|f, t| f == "unresolved" && t == "safe"),
-            "counterexample_to_safe": named(&|f, t| f == "unsafe" && t == "safe"),
-            "still_safe": named(&|f, t| f == "safe" && t == "safe"),
-            "no_longer_safe": named(&|f, t| f == "safe" && t != "safe"),
-            "newly_safe": named(&|f, t| f != "safe" && t == "safe"),
+            "safe_to_counterexample": named(&|f, t| f == Safe && t == Counterexample),
+            "safe_to_unresolved": named(&|f, t| f == Safe && t == Unresolved),
+            "unresolved_to_safe": named(&|f, t| f == Unresolved && t == Safe),
+            "counterexample_to_safe": named(&|f, t| f == Counterexample && t == Safe),
+            "still_safe": named(&|f, t| f == Safe && t == Safe),
+            "no_longer_safe": named(&|f, t| f == Safe && t != Safe),
+            "newly_safe": named(&|f, t| f != Safe && t == Safe),
         },
-        "note": format!("a volume counts a cell at depth d as 2^-d of the envelope; {}", crate::campaigns::COUNTEREXAMPLE_NOTE),
-        "statuses": SHOWN_STATUSES,
+        "note": format!("a volume counts a cell at depth d as 2^-d of the envelope; {}", tessera_protocol::COUNTEREXAMPLE_NOTE),
+        "statuses": CellStatus::ALL,
         "split_states": split_states,
         "envelope": info.split_envelope,
         "columns": "from status index, to status index, exponent e (the piece is 2^-e of the envelope), then lo and hi of each split state",

@@ -5,8 +5,8 @@
 use crate::error::{ApiError, ApiResult};
 use crate::refine::{self, CellBox};
 use crate::store::{now_ms, CampaignInfo, Deltas, Store};
-use serde::{Deserialize, Serialize};
 use sqlx::{Row, Sqlite, Transaction};
+use tessera_protocol::{CampaignState, CellStatus, ItemAnswer, LeaseStatus, LeasedCell, Outcome, ResultItem};
 use std::collections::{HashMap, HashSet};
 use std::sync::Arc;
 
@@ -31,21 +31,6 @@ fn tuples(rows: usize, cols: usize) -> String {
 
 // ------------------------------------------------------------------ leasing
 
-/// One leased cell, as handed to a worker.
-#[derive(Debug, Clone, Serialize, Deserialize)]
-pub struct LeasedCell {
-    pub cell_id: String,
-    pub lease_id: String,
-    pub campaign_id: String,
-    pub spec_hash: String,
-    pub depth: u32,
-    /// `{"state": [lo, hi]}` for every state of the spec.
-    #[serde(rename = "box")]
-    pub cell_box: serde_json::Map<String, serde_json::Value>,
-    /// Lease expiry, milliseconds since the Unix epoch.
-    pub expires_at_ms: i64,
-}
-
 /// What [`lease`] did besides leasing.
 #[derive(Debug, Default, Clone, Copy)]
 pub struct LeaseStats {
@@ -68,15 +53,15 @@ pub async fn lease(
     let reclaimed = reclaim_expired_in(store, &mut w.tx, limits, now, &mut deltas).await?;
 
     let campaigns: Vec<String> = match only_campaign {
-        Some(c) => sqlx::query_scalar("SELECT id FROM campaigns WHERE id = ? AND state = 'running'")
+        Some(c) => sqlx::query_scalar("SELECT id FROM campaigns WHERE id = ? AND state = ?")
             .bind(c)
+            .bind(CampaignState::Running.as_str())
             .fetch_all(&mut *w.tx)
             .await?,
-        None => sqlx::query_scalar(
-            "SELECT id FROM campaigns WHERE state = 'running' ORDER BY priority DESC, created_at ASC, id ASC",
-        )
-        .fetch_all(&mut *w.tx)
-        .await?,
+        None => sqlx::query_scalar("SELECT id FROM campaigns WHERE state = ? ORDER BY priority DESC, created_at ASC, id ASC")
+            .bind(CampaignState::Running.as_str())
+            .fetch_all(&mut *w.tx)
+            .await?,
     };
     let expires = now + limits.lease_ms;
     let mut out = Vec::new();
@@ -87,10 +72,11 @@ pub async fn lease(
         }
         let Some(info) = store.info(&cid).await? else { continue };
         let rows = sqlx::query(
-            "SELECT rowid, id, depth, box FROM cells WHERE campaign_id = ? AND status = 'pending'
+            "SELECT rowid, id, depth, box FROM cells WHERE campaign_id = ? AND status = ?
              ORDER BY depth ASC, rowid ASC LIMIT ?",
         )
         .bind(&cid)
+        .bind(CellStatus::Pending.as_str())
         .bind(want as i64)
         .fetch_all(&mut *w.tx)
         .await?;
@@ -105,7 +91,7 @@ pub async fn lease(
             let b: Vec<u8> = r.try_get(3)?;
             let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
             let lease_id = uuid::Uuid::new_v4().to_string();
-            deltas.moved(&cid, "pending", "leased", refine::volume(info.max_depth, depth as u32));
+            deltas.moved(&cid, CellStatus::Pending, CellStatus::Leased, refine::volume(info.max_depth, depth as u32));
             out.push(LeasedCell {
                 cell_id: id,
                 lease_id: lease_id.clone(),
@@ -119,11 +105,11 @@ pub async fn lease(
         }
         for chunk in picked.chunks(CHUNK) {
             let sql = format!(
-                "UPDATE cells SET status = 'leased', lease_id = v.column2, lease_expires_at = ?, leased_by = ?,
+                "UPDATE cells SET status = ?, lease_id = v.column2, lease_expires_at = ?, leased_by = ?,
                  leased_at = ?, updated_at = ? FROM (VALUES {}) AS v WHERE cells.rowid = v.column1",
                 tuples(chunk.len(), 2)
             );
-            let mut q = sqlx::query(&sql).bind(expires).bind(worker).bind(now).bind(now);
+            let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str()).bind(expires).bind(worker).bind(now).bind(now);
             for (rowid, lid) in chunk {
                 q = q.bind(*rowid).bind(lid.as_str());
             }
@@ -180,7 +166,11 @@ async fn reclaim_expired_in(
     now: i64,
     deltas: &mut Deltas,
 ) -> ApiResult<u64> {
-    let rows = sqlx::query(&format!("SELECT {ENDING_COLS} FROM cells WHERE status = 'leased' AND lease_expires_at < ?"))
+    // The status is spelled into the text, not bound: the expiry index is partial on it.
+    let rows = sqlx::query(&format!(
+        "SELECT {ENDING_COLS} FROM cells WHERE status = '{}' AND lease_expires_at < ?",
+        CellStatus::Leased.as_str()
+    ))
     .bind(now)
     .fetch_all(&mut **tx)
     .await?;
@@ -189,7 +179,7 @@ async fn reclaim_expired_in(
         ends.push(Ending::from_row(&r)?);
     }
     let n = ends.len() as u64;
-    end_leases(store, tx, limits, now, ends, "expired", deltas).await?;
+    end_leases(store, tx, limits, now, ends, LeaseStatus::Expired, deltas).await?;
     Ok(n)
 }
 
@@ -203,7 +193,7 @@ async fn end_leases(
     limits: QueueLimits,
     now: i64,
     ends: Vec<Ending>,
-    reason: &'static str,
+    reason: LeaseStatus,
     deltas: &mut Deltas,
 ) -> ApiResult<()> {
     for chunk in ends.chunks(CHUNK) {
@@ -214,17 +204,17 @@ async fn end_leases(
                 .await?
                 .ok_or_else(|| ApiError::internal(format!("cell {} has no campaign", e.cell_id)))?;
             let vol = refine::volume(info.max_depth, e.depth);
-            let (expiries, status, error) = if reason == "expired" {
+            let (expiries, status, error) = if reason == LeaseStatus::Expired {
                 let n = e.expiries + 1;
                 if n >= limits.max_expiries as i64 {
-                    (n, "failed", Some(format!("{n} leases of this cell expired without a result")))
+                    (n, CellStatus::Failed, Some(format!("{n} leases of this cell expired without a result")))
                 } else {
-                    (n, "pending", None)
+                    (n, CellStatus::Pending, None)
                 }
             } else {
-                (e.expiries, "pending", None)
+                (e.expiries, CellStatus::Pending, None)
             };
-            deltas.moved(&e.campaign_id, "leased", status, vol);
+            deltas.moved(&e.campaign_id, CellStatus::Leased, status, vol);
             rows.push((e.rowid, status, expiries, error));
         }
         let sql = format!(
@@ -235,7 +225,7 @@ async fn end_leases(
         );
         let mut q = sqlx::query(&sql).bind(now);
         for (rowid, status, expiries, error) in &rows {
-            q = q.bind(*rowid).bind(*status).bind(*expiries).bind(error.clone());
+            q = q.bind(*rowid).bind(status.as_str()).bind(*expiries).bind(error.clone());
         }
         q.execute(&mut **tx).await?;
         let sql = format!(
@@ -244,7 +234,7 @@ async fn end_leases(
         );
         let mut q = sqlx::query(&sql);
         for e in chunk {
-            q = q.bind(e.lease_id.as_str()).bind(e.cell_id.as_str()).bind(reason).bind(now);
+            q = q.bind(e.lease_id.as_str()).bind(e.cell_id.as_str()).bind(reason.as_str()).bind(now);
         }
         q.execute(&mut **tx).await?;
     }
@@ -254,16 +244,16 @@ async fn end_leases(
 /// Give leases back unfinished (a worker stopping): the cells return to `pending`
 /// without counting a failed attempt. Per lease: `released`, or why it is not held
 /// (`completed`, `expired`, `withdrawn`, `released`, `unknown_lease`).
-pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ExtendItem>> {
+pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ItemAnswer>> {
     let mut w = store.write().await?;
     let mut deltas = Deltas::default();
     let mut ends = Vec::new();
     for chunk in lease_ids.chunks(CHUNK) {
         let sql = format!(
-            "SELECT {ENDING_COLS} FROM cells WHERE status = 'leased' AND lease_id IN ({})",
+            "SELECT {ENDING_COLS} FROM cells WHERE status = ? AND lease_id IN ({})",
             vec!["?"; chunk.len()].join(", ")
         );
-        let mut q = sqlx::query(&sql);
+        let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str());
         for l in chunk {
             q = q.bind(l.as_str());
         }
@@ -272,12 +262,12 @@ pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -
         }
     }
     let released: HashSet<String> = ends.iter().map(|e| e.lease_id.clone()).collect();
-    end_leases(store, &mut w.tx, limits, now_ms(), ends, "released", &mut deltas).await?;
+    end_leases(store, &mut w.tx, limits, now_ms(), ends, LeaseStatus::Released, &mut deltas).await?;
     deltas.apply(&mut w.tx).await?;
     let mut out = Vec::with_capacity(lease_ids.len());
     for l in lease_ids {
-        let status = if released.contains(l) { "released" } else { ended_status(&mut w.tx, l).await? };
-        out.push(ExtendItem { lease_id: l.clone(), status: status.into(), expires_at_ms: None });
+        let status = if released.contains(l) { LeaseStatus::Released } else { ended_status(&mut w.tx, l).await? };
+        out.push(ItemAnswer::new(l, status));
     }
     w.commit().await?;
     Ok(out)
@@ -292,44 +282,35 @@ pub async fn withdraw_leases(
     campaign: &str,
     deltas: &mut Deltas,
 ) -> ApiResult<()> {
-    let rows = sqlx::query(&format!("SELECT {ENDING_COLS} FROM cells WHERE campaign_id = ? AND status = 'leased'"))
+    let rows = sqlx::query(&format!("SELECT {ENDING_COLS} FROM cells WHERE campaign_id = ? AND status = ?"))
     .bind(campaign)
+    .bind(CellStatus::Leased.as_str())
     .fetch_all(&mut **tx)
     .await?;
     let mut ends = Vec::new();
     for r in rows {
         ends.push(Ending::from_row(&r)?);
     }
-    end_leases(store, tx, limits, now_ms(), ends, "withdrawn", deltas).await
+    end_leases(store, tx, limits, now_ms(), ends, LeaseStatus::Withdrawn, deltas).await
 }
 
 // ------------------------------------------------------------------ extending
 
-/// Per-lease answer of an extend request.
-#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
-pub struct ExtendItem {
-    pub lease_id: String,
-    /// `extended`, `expired`, `withdrawn`, `completed` or `unknown_lease`.
-    pub status: String,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub expires_at_ms: Option<i64>,
-}
-
 /// Push the expiry of each lease still held to now + lease time. A lease that ran
 /// out but was not swept yet is held still (nobody else has the cell) and is
 /// extended too: after an outage longer than the lease, the worker keeps its cells.
-pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ExtendItem>> {
+pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ItemAnswer>> {
     let mut w = store.write().await?;
     let now = now_ms();
     let expires = now + limits.lease_ms;
     let mut extended = HashSet::new();
     for chunk in lease_ids.chunks(CHUNK) {
         let sql = format!(
-            "UPDATE cells SET lease_expires_at = ?, updated_at = ? WHERE status = 'leased'
+            "UPDATE cells SET lease_expires_at = ?, updated_at = ? WHERE status = ?
              AND lease_id IN ({}) RETURNING lease_id",
             vec!["?"; chunk.len()].join(", ")
         );
-        let mut q = sqlx::query_scalar::<_, String>(&sql).bind(expires).bind(now);
+        let mut q = sqlx::query_scalar::<_, String>(&sql).bind(expires).bind(now).bind(CellStatus::Leased.as_str());
         for l in chunk {
             q = q.bind(l.as_str());
         }
@@ -338,10 +319,9 @@ pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) ->
     let mut out = Vec::with_capacity(lease_ids.len());
     for l in lease_ids {
         if extended.contains(l) {
-            out.push(ExtendItem { lease_id: l.clone(), status: "extended".into(), expires_at_ms: Some(expires) });
+            out.push(ItemAnswer { expires_at_ms: Some(expires), ..ItemAnswer::new(l, LeaseStatus::Extended) });
         } else {
-            let status = ended_status(&mut w.tx, l).await?;
-            out.push(ExtendItem { lease_id: l.clone(), status: status.into(), expires_at_ms: None });
+            out.push(ItemAnswer::new(l, ended_status(&mut w.tx, l).await?));
         }
     }
     w.commit().await?;
@@ -350,112 +330,42 @@ pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) ->
 
 /// Why a lease id is not held by any cell: `completed`, `expired`, `withdrawn`,
 /// `released` or `unknown_lease`.
-async fn ended_status(tx: &mut Transaction<'static, Sqlite>, lease_id: &str) -> ApiResult<&'static str> {
+async fn ended_status(tx: &mut Transaction<'static, Sqlite>, lease_id: &str) -> ApiResult<LeaseStatus> {
     let done: Option<i64> =
         sqlx::query_scalar("SELECT 1 FROM results WHERE lease_id = ?").bind(lease_id).fetch_optional(&mut **tx).await?;
     if done.is_some() {
-        return Ok("completed");
+        return Ok(LeaseStatus::Completed);
     }
     let ended: Option<String> = sqlx::query_scalar("SELECT reason FROM ended_leases WHERE lease_id = ?")
         .bind(lease_id)
         .fetch_optional(&mut **tx)
         .await?;
     if let Some(r) = ended {
-        return Ok(match r.as_str() {
-            "withdrawn" => "withdrawn",
-            "released" => "released",
-            _ => "expired",
+        return Ok(match LeaseStatus::parse(&r) {
+            Some(s @ (LeaseStatus::Withdrawn | LeaseStatus::Released)) => s,
+            _ => LeaseStatus::Expired,
         });
     }
-    let held: Option<i64> = sqlx::query_scalar("SELECT 1 FROM cells WHERE lease_id = ? AND status = 'leased'")
+    let held: Option<i64> = sqlx::query_scalar("SELECT 1 FROM cells WHERE lease_id = ? AND status = ?")
         .bind(lease_id)
+        .bind(CellStatus::Leased.as_str())
         .fetch_optional(&mut **tx)
         .await?;
-    Ok(if held.is_some() { "expired" } else { "unknown_lease" })
+    Ok(if held.is_some() { LeaseStatus::Expired } else { LeaseStatus::UnknownLease })
 }
 
 // ------------------------------------------------------------------ results
 
-/// One result in a submission.
-#[derive(Debug, Clone, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct SubmitItem {
-    pub lease_id: String,
-    /// Optional; when given it must be the leased cell's id (a cross-check).
-    #[serde(default)]
-    pub cell_id: Option<String>,
-    /// The engine's verdict JSON (`{"verdict": …, "split_hint": …, …}`), or
-    /// `{"error": "text"}` for a failed attempt. Stored as given.
-    pub result: serde_json::Value,
-    /// Time the worker spent on the cell, milliseconds.
-    #[serde(default)]
-    pub elapsed_ms: Option<f64>,
-}
+/// Longest error text kept from a failed attempt, in characters.
+const MAX_ERROR_CHARS: usize = 4000;
 
-/// Per-result answer of a submission.
-#[derive(Debug, Clone, Serialize, Deserialize, PartialEq)]
-pub struct SubmitAnswer {
-    pub lease_id: String,
-    /// `accepted`; or, with nothing recorded: `duplicate` (already answered),
-    /// `expired` (the lease ran out and the cell was leased again or decided since; a
-    /// result for an expired lease whose cell nobody else took is accepted), `withdrawn`
-    /// (campaign cancelled), `unknown_lease`, `invalid` (bad result JSON).
-    pub status: String,
-    /// Status of the cell after an accepted result.
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub cell_status: Option<String>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub detail: Option<String>,
-}
-
-/// What an accepted result says, as far as refinement cares.
-#[derive(Debug, Clone, PartialEq)]
-pub enum Outcome {
-    Safe,
-    Unsafe,
-    /// With the hinted state name, if any.
-    Inconclusive(Option<String>),
-    Error(String),
-}
-
-impl Outcome {
-    fn kind(&self) -> &'static str {
-        match self {
-            Outcome::Safe => "safe",
-            Outcome::Unsafe => "unsafe",
-            Outcome::Inconclusive(_) => "inconclusive",
-            Outcome::Error(_) => "error",
-        }
-    }
-}
-
-/// Read `verdict` and `split_hint.dim` (or `error`) from a result; the rest is not
-/// interpreted.
-pub fn classify(v: &serde_json::Value) -> Result<Outcome, String> {
-    let obj = v.as_object().ok_or("result must be a JSON object")?;
-    match (obj.get("verdict"), obj.get("error")) {
-        (None, Some(e)) => {
-            let text = e.as_str().ok_or("result.error must be a string")?;
-            Ok(Outcome::Error(text.chars().take(4000).collect()))
-        }
-        (Some(verdict), None) => match verdict.as_str() {
-            Some("safe") => Ok(Outcome::Safe),
-            Some("unsafe") => Ok(Outcome::Unsafe),
-            Some("inconclusive") => {
-                let hint = match obj.get("split_hint") {
-                    None | Some(serde_json::Value::Null) => None,
-                    Some(h) => match h.get("dim") {
-                        Some(serde_json::Value::String(s)) => Some(s.clone()),
-                        _ => return Err("result.split_hint must be null or an object with a string 'dim'".into()),
-                    },
-                };
-                Ok(Outcome::Inconclusive(hint))
-            }
-            _ => Err("result.verdict must be \"safe\", \"unsafe\" or \"inconclusive\"".into()),
-        },
-        (Some(_), Some(_)) => Err("result has both 'verdict' and 'error'".into()),
-        (None, None) => Err("result needs 'verdict' (or 'error' for a failed attempt)".into()),
-    }
+/// What a submitted result says (its outer shape, read by the protocol crate); the
+/// error text of a failed attempt is cut to [`MAX_ERROR_CHARS`].
+pub fn classify(result: &serde_json::Value) -> Result<Outcome, String> {
+    Ok(match Outcome::of_result(result)? {
+        Outcome::Error(text) => Outcome::Error(text.chars().take(MAX_ERROR_CHARS).collect()),
+        o => o,
+    })
 }
 
 /// Counts of what a submission did.
@@ -476,7 +386,7 @@ struct HeldCell {
     depth: u32,
     cell: CellBox,
     /// `leased` or `pending`: the counter the cell leaves.
-    from: &'static str,
+    from: CellStatus,
     attempts: i64,
     leased_at: Option<i64>,
     /// A follow-up's re-joined cell: cut here, into the earlier halves, unless safe.
@@ -489,19 +399,19 @@ pub async fn submit(
     limits: QueueLimits,
     worker: &str,
     engine_version: Option<&str>,
-    items: &[SubmitItem],
-) -> ApiResult<(Vec<SubmitAnswer>, SubmitStats)> {
-    let mut answers: Vec<Option<SubmitAnswer>> = vec![None; items.len()];
+    items: &[ResultItem],
+) -> ApiResult<(Vec<ItemAnswer>, SubmitStats)> {
+    let mut answers: Vec<Option<ItemAnswer>> = vec![None; items.len()];
     let mut outcomes: Vec<Option<Outcome>> = vec![None; items.len()];
     let mut seen = HashSet::new();
     for (i, it) in items.iter().enumerate() {
         if !seen.insert(it.lease_id.as_str()) {
-            answers[i] = Some(reject(it, "duplicate", "this lease appears earlier in the same batch"));
+            answers[i] = Some(reject(it, LeaseStatus::Duplicate, "this lease appears earlier in the same batch"));
             continue;
         }
         match classify(&it.result) {
             Ok(o) => outcomes[i] = Some(o),
-            Err(m) => answers[i] = Some(reject(it, "invalid", &m)),
+            Err(m) => answers[i] = Some(reject(it, LeaseStatus::Invalid, &m)),
         }
     }
 
@@ -516,18 +426,34 @@ pub async fn submit(
     // Held by the lease itself; then, for leases not found so, cells whose lease
     // expired, were swept back to the queue and were not leased again (nobody else
     // holds them), in campaigns still open, for leases without a result yet.
+    // Each pass: its query, and the values of its leading parameters.
     const HELD: &str = "SELECT rowid, id, campaign_id, depth, box, status, attempts, leased_at, lease_id, coarse_dim
-         FROM cells WHERE status = 'leased' AND lease_id IN";
+         FROM cells WHERE status = ? AND lease_id IN";
     const SWEPT: &str =
         "SELECT c.rowid, c.id, c.campaign_id, c.depth, c.box, c.status, c.attempts, c.leased_at, e.lease_id, c.coarse_dim
          FROM ended_leases e JOIN cells c ON c.id = e.cell_id JOIN campaigns k ON k.id = c.campaign_id
-         WHERE e.reason = 'expired' AND c.status = 'pending' AND k.state IN ('running', 'paused')
+         WHERE e.reason = ? AND c.status = ? AND k.state IN (?, ?)
          AND NOT EXISTS (SELECT 1 FROM results r WHERE r.lease_id = e.lease_id) AND e.lease_id IN";
-    for pass in [HELD, SWEPT] {
+    let passes: [(&str, &[&str]); 2] = [
+        (HELD, &[CellStatus::Leased.as_str()]),
+        (
+            SWEPT,
+            &[
+                LeaseStatus::Expired.as_str(),
+                CellStatus::Pending.as_str(),
+                CampaignState::Running.as_str(),
+                CampaignState::Paused.as_str(),
+            ],
+        ),
+    ];
+    for (pass, leading) in passes {
         let ids: Vec<&str> = wanted.iter().copied().filter(|l| !held.contains_key(*l)).collect();
         for chunk in ids.chunks(CHUNK) {
             let sql = format!("{pass} ({})", vec!["?"; chunk.len()].join(", "));
             let mut q = sqlx::query(&sql);
+            for v in leading {
+                q = q.bind(*v);
+            }
             for l in chunk {
                 q = q.bind(*l);
             }
@@ -535,7 +461,10 @@ pub async fn submit(
                 let id: String = r.try_get(1)?;
                 let b: Vec<u8> = r.try_get(4)?;
                 let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
-                let from = if r.try_get::<String, _>(5)? == "leased" { "leased" } else { "pending" };
+                let from = match CellStatus::parse(&r.try_get::<String, _>(5)?) {
+                    Some(CellStatus::Leased) => CellStatus::Leased,
+                    _ => CellStatus::Pending,
+                };
                 held.entry(r.try_get(8)?).or_insert(HeldCell {
                     rowid: r.try_get(0)?,
                     id,
@@ -580,24 +509,28 @@ pub async fn submit(
     for (i, it) in items.iter().enumerate() {
         let Some(outcome) = outcomes[i].take() else { continue };
         let Some(h) = held.remove(&it.lease_id) else {
-            let status = ended_status(&mut w.tx, &it.lease_id).await?;
-            let status = if status == "completed" { "duplicate" } else { status };
+            let status = match ended_status(&mut w.tx, &it.lease_id).await? {
+                LeaseStatus::Completed => LeaseStatus::Duplicate,
+                s => s,
+            };
             let detail = match status {
-                "duplicate" => "a result for this lease was already accepted; this one is ignored",
-                "expired" => "the lease expired and its cell was leased again, or decided, before the result arrived",
-                "withdrawn" => "the campaign was cancelled; the result is ignored",
-                "released" => "the worker released this lease; the cell went back to the queue",
+                LeaseStatus::Duplicate => "a result for this lease was already accepted; this one is ignored",
+                LeaseStatus::Expired => {
+                    "the lease expired and its cell was leased again, or decided, before the result arrived"
+                }
+                LeaseStatus::Withdrawn => "the campaign was cancelled; the result is ignored",
+                LeaseStatus::Released => "the worker released this lease; the cell went back to the queue",
                 _ => "no such lease",
             };
             answers[i] = Some(reject(it, status, detail));
             continue;
         };
         if it.cell_id.as_ref().is_some_and(|c| *c != h.id) {
-            answers[i] = Some(reject(it, "invalid", &format!("this lease is for cell {}, not the cell_id given", h.id)));
+            answers[i] = Some(reject(it, LeaseStatus::Invalid, &format!("this lease is for cell {}, not the cell_id given", h.id)));
             continue;
         }
         if !decided.insert(h.id.clone()) {
-            answers[i] = Some(reject(it, "expired", "the lease expired and another result for its cell came first"));
+            answers[i] = Some(reject(it, LeaseStatus::Expired, "the lease expired and another result for its cell came first"));
             continue;
         }
         let info = &infos[&h.campaign_id];
@@ -615,15 +548,15 @@ pub async fn submit(
                 false
             }
         };
-        let status: &'static str = match &outcome {
-            Outcome::Safe => "safe",
+        let status = match &outcome {
+            Outcome::Safe => CellStatus::Safe,
             Outcome::Error(text) => {
                 attempts += 1;
                 error = Some(text.clone());
                 if attempts >= limits.max_attempts as i64 {
-                    "failed"
+                    CellStatus::Failed
                 } else {
-                    "pending"
+                    CellStatus::Pending
                 }
             }
             Outcome::Unsafe | Outcome::Inconclusive(_) => {
@@ -631,7 +564,8 @@ pub async fn submit(
                 // the earlier campaign's two halves, whatever the verdict.
                 let coarse = h.coarse_dim.filter(|&d| d < h.cell.len());
                 let wants_split = matches!(outcome, Outcome::Inconclusive(_)) || info.refine_unsafe || coarse.is_some();
-                let final_status = if matches!(outcome, Outcome::Unsafe) { "unsafe" } else { "unresolved" };
+                let final_status =
+                    if matches!(outcome, Outcome::Unsafe) { CellStatus::Counterexample } else { CellStatus::Unresolved };
                 let hint = match &outcome {
                     Outcome::Inconclusive(Some(name)) => {
                         info.split.iter().position(|&k| info.states.get(k) == Some(name))
@@ -645,8 +579,8 @@ pub async fn submit(
                                 split_dim = Some(d as i64);
                                 children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, a));
                                 children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, b));
-                                deltas.add(&h.campaign_id, "pending", 2, vol);
-                                "split"
+                                deltas.add(&h.campaign_id, CellStatus::Pending, 2, vol);
+                                CellStatus::Split
                             }
                             None => final_status,
                         }
@@ -658,9 +592,9 @@ pub async fn submit(
         // A split node leaves the leaf volume (its halves were added above). Internal
         // nodes are counted but carry no volume: their volumes would sum to more
         // than the envelope (and overflow i64 for deep trees).
-        if status == "split" {
+        if status == CellStatus::Split {
             deltas.add(&h.campaign_id, h.from, -1, -vol);
-            deltas.add(&h.campaign_id, "split", 1, 0);
+            deltas.add(&h.campaign_id, CellStatus::Split, 1, 0);
         } else {
             deltas.moved(&h.campaign_id, h.from, status, vol);
         }
@@ -679,12 +613,7 @@ pub async fn submit(
         ));
         cell_rows.push((h.rowid, status, split_dim, attempts, error, result_id));
         stats.accepted += 1;
-        answers[i] = Some(SubmitAnswer {
-            lease_id: it.lease_id.clone(),
-            status: "accepted".into(),
-            cell_status: Some(status.into()),
-            detail: None,
-        });
+        answers[i] = Some(ItemAnswer { cell_status: Some(status), ..ItemAnswer::new(&it.lease_id, LeaseStatus::Accepted) });
     }
 
     for chunk in result_rows.chunks(CHUNK) {
@@ -720,7 +649,7 @@ pub async fn submit(
         );
         let mut q = sqlx::query(&sql).bind(now);
         for (rowid, status, dim, attempts, error, rid) in chunk {
-            q = q.bind(*rowid).bind(*status).bind(*dim).bind(*attempts).bind(error.clone()).bind(rid.as_str());
+            q = q.bind(*rowid).bind(status.as_str()).bind(*dim).bind(*attempts).bind(error.clone()).bind(rid.as_str());
         }
         q.execute(&mut *w.tx).await?;
     }
@@ -742,18 +671,13 @@ pub async fn submit(
     deltas.apply(&mut w.tx).await?;
     w.commit().await?;
 
-    let answers: Vec<SubmitAnswer> = answers.into_iter().flatten().collect();
+    let answers: Vec<ItemAnswer> = answers.into_iter().flatten().collect();
     stats.rejected = answers.len() as u64 - stats.accepted;
     Ok((answers, stats))
 }
 
-fn reject(it: &SubmitItem, status: &str, detail: &str) -> SubmitAnswer {
-    SubmitAnswer {
-        lease_id: it.lease_id.clone(),
-        status: status.into(),
-        cell_status: None,
-        detail: Some(detail.into()),
-    }
+fn reject(it: &ResultItem, status: LeaseStatus, detail: &str) -> ItemAnswer {
+    ItemAnswer { detail: Some(detail.into()), ..ItemAnswer::new(&it.lease_id, status) }
 }
 
 /// Insert new `pending` cells `(campaign, parent, depth, box)` (counters are the
@@ -779,7 +703,7 @@ pub async fn insert_cells(
                 .bind(parent)
                 .bind(*depth as i64)
                 .bind(refine::encode_box(b))
-                .bind("pending")
+                .bind(CellStatus::Pending.as_str())
                 .bind(now)
                 .bind(now);
             ids.push(id);

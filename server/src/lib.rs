@@ -18,6 +18,7 @@ pub mod metrics;
 pub mod model_check;
 pub mod openapi;
 pub mod refine;
+pub mod seed;
 pub mod store;
 
 pub use api::{router, routes, AppState};

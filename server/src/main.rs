@@ -19,18 +19,6 @@ enum Command {
     /// The whole job on its embedded default: a server on a SQLite file in a working
     /// folder, local worker processes and the demo campaigns.
     Demo(tessera_server::demo::DemoOptions),
-    /// Run a worker in this process (used by `demo`; `tessera-worker run` is the same).
-    #[command(hide = true)]
-    Worker {
-        #[arg(long, env = "TESSERA_SERVER")]
-        server: String,
-        #[arg(long, env = "TESSERA_TOKEN", hide_env_values = true)]
-        token: String,
-        #[arg(long, default_value_t = 1)]
-        threads: usize,
-        #[arg(long, default_value = "worker")]
-        name: String,
-    },
     /// Access tokens.
     Token {
         #[command(subcommand)]
@@ -80,18 +68,6 @@ async fn run(cli: Cli) -> anyhow::Result<()> {
             Ok(())
         }
         Command::Demo(opts) => tessera_server::demo::run(opts).await,
-        Command::Worker { server, token, threads, name } => {
-            use std::sync::atomic::AtomicBool;
-            use std::sync::Arc;
-            let stop = Arc::new(AtomicBool::new(false));
-            for sig in [signal_hook::consts::SIGTERM, signal_hook::consts::SIGINT] {
-                signal_hook::flag::register(sig, stop.clone())?;
-            }
-            let opts = tessera_worker::client::run::RunOptions { server, token, threads, name, max_cells: None, idle_exit: None, ack_log: None };
-            let s = tokio::task::spawn_blocking(move || tessera_worker::client::run::run(opts, stop)).await??;
-            println!("worker done: {} cells in {:.1} s, {} leases released", s.cells, s.seconds, s.released);
-            Ok(())
-        }
         Command::Token { command: TokenCommand::Create { role, db, label } } => {
             let store = Store::open(&db).await?;
             let token = store.create_token(role, &label).await.map_err(|e| anyhow::anyhow!(e.detail))?;

@@ -1,6 +1,7 @@
 //! Process counters and their Prometheus text rendering (with gauges read from the
 //! store at scrape time).
 
+use tessera_protocol::CampaignState;
 use crate::error::ApiResult;
 use crate::store::Store;
 use sqlx::Row;
@@ -78,9 +79,12 @@ impl Metrics {
         }
         let rows = sqlx::query(
             "SELECT k.campaign_id, k.status, k.cells, k.volume, c.max_depth FROM campaign_counters k
-             JOIN campaigns c ON c.id = k.campaign_id WHERE c.state IN ('running', 'paused', 'done')
+             JOIN campaigns c ON c.id = k.campaign_id WHERE c.state IN (?, ?, ?)
              ORDER BY k.campaign_id, k.status LIMIT 7000",
         )
+        .bind(CampaignState::Running.as_str())
+        .bind(CampaignState::Paused.as_str())
+        .bind(CampaignState::Done.as_str())
         .fetch_all(&store.pool)
         .await?;
         let _ = writeln!(s, "# HELP tessera_cells Cells by campaign and status.\n# TYPE tessera_cells gauge");
@@ -88,10 +92,11 @@ impl Metrics {
         let _ = writeln!(fr, "# HELP tessera_volume_fraction Fraction of the envelope by campaign and leaf status.\n# TYPE tessera_volume_fraction gauge");
         for r in rows {
             let (c, stored): (String, String) = (r.try_get(0)?, r.try_get(1)?);
-            let st = crate::store::shown(&stored);
+            let status = crate::store::cell_status(&stored)?;
+            let st = status.api_name();
             let (n, v, d): (i64, i64, i64) = (r.try_get(2)?, r.try_get(3)?, r.try_get(4)?);
             let _ = writeln!(s, "tessera_cells{{campaign=\"{c}\",status=\"{st}\"}} {n}");
-            if st != "split" {
+            if status.is_leaf() {
                 let total = (1i64 << d.clamp(0, 62)) as f64;
                 let _ = writeln!(fr, "tessera_volume_fraction{{campaign=\"{c}\",status=\"{st}\"}} {}", v as f64 / total);
             }

@@ -1,15 +1,41 @@
-//! The OpenAPI 3 document, built from the same route table as the router.
+//! The OpenAPI 3 document, built from the same route table as the router: the table
+//! (`crate::api::routes`) holds a [`RouteDoc`] per route, defined here so that this
+//! module depends on nothing of the HTTP layer.
 
-use crate::api::{BodyKind, Route};
 use crate::auth::Access;
+use axum::http::Method;
 use serde_json::{json, Map, Value};
+
+/// Kind of request body a route takes.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum BodyKind {
+    None,
+    /// A JSON document of the named schema.
+    Json(&'static str),
+    /// Raw bytes (a model).
+    Binary,
+}
+
+/// One route as documented: method, path (axum syntax, `{param}`), who may call it,
+/// summary, query parameters and bodies.
+#[derive(Clone, Debug)]
+pub struct RouteDoc {
+    pub method: Method,
+    pub path: &'static str,
+    pub access: Access,
+    pub summary: &'static str,
+    pub query: &'static [(&'static str, &'static str)],
+    pub body: BodyKind,
+    /// Content type of the success answer.
+    pub produces: &'static str,
+}
 
 fn path_params(path: &str) -> Vec<String> {
     path.split('/').filter_map(|seg| seg.strip_prefix('{').and_then(|s| s.strip_suffix('}'))).map(String::from).collect()
 }
 
 /// An OpenAPI 3.0 document listing every route of `routes`.
-pub fn document(routes: &[Route]) -> Value {
+pub fn document<'a>(routes: impl IntoIterator<Item = &'a RouteDoc>) -> Value {
     let mut paths = Map::new();
     for r in routes {
         let mut params: Vec<Value> = path_params(r.path)
@@ -78,4 +104,52 @@ pub fn document(routes: &[Route]) -> Value {
             }
         }
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use tessera_protocol::{ExtendRequest, LeaseRequest, ResultItem, SubmitRequest};
+
+    /// The keys of `v` serialised, leaving out nulls.
+    fn keys(v: impl serde::Serialize) -> Vec<String> {
+        let v = serde_json::to_value(v).unwrap();
+        let mut k: Vec<String> =
+            v.as_object().unwrap().iter().filter(|(_, x)| !x.is_null()).map(|(k, _)| k.clone()).collect();
+        k.sort();
+        k
+    }
+
+    /// The schema's property names and required names, sorted.
+    fn schema(v: &Value) -> (Vec<String>, Vec<String>) {
+        let mut props: Vec<String> = v["properties"].as_object().unwrap().keys().cloned().collect();
+        let mut req: Vec<String> = v["required"].as_array().unwrap().iter().map(|s| s.as_str().unwrap().to_string()).collect();
+        props.sort();
+        req.sort();
+        (props, req)
+    }
+
+    #[test]
+    fn request_schemas_match_the_protocol_types() {
+        let doc = document(std::iter::empty());
+        let s = &doc["components"]["schemas"];
+        let item = |full: bool| ResultItem {
+            lease_id: "l".into(),
+            cell_id: full.then(|| "c".into()),
+            result: json!({}),
+            elapsed_ms: full.then_some(1.0),
+        };
+        // Every field is a property; the fields that are always written are required.
+        let lease = |full: bool| LeaseRequest { max: 1, worker: full.then(|| "w".into()), campaign_id: full.then(|| "c".into()) };
+        assert_eq!(schema(&s["LeaseRequest"]), (keys(lease(true)), keys(lease(false))));
+        let ext = ExtendRequest { lease_ids: vec![] };
+        assert_eq!(schema(&s["ExtendRequest"]), (keys(&ext), keys(&ext)));
+        let submit = |full: bool| SubmitRequest {
+            worker: full.then(|| "w".into()),
+            engine_version: full.then(|| "0".into()),
+            results: vec![item(full)],
+        };
+        assert_eq!(schema(&s["SubmitRequest"]), (keys(submit(true)), keys(submit(false))));
+        assert_eq!(schema(&s["SubmitRequest"]["properties"]["results"]["items"]), (keys(item(true)), keys(item(false))));
+    }
 }

@@ -10,41 +10,19 @@ use crate::auth::{self, Role};
 use crate::error::{ApiError, ApiResult};
 use sqlx::sqlite::{SqliteConnectOptions, SqliteJournalMode, SqlitePoolOptions, SqliteSynchronous};
 use sqlx::{Row, Sqlite, SqlitePool, Transaction};
-use std::collections::HashMap;
+use std::collections::{BTreeMap, HashMap};
 use std::path::Path;
 use std::sync::{Arc, RwLock};
 use std::time::Duration;
+use tessera_protocol::{CampaignState, CellStatus};
 
-/// Cell statuses as stored (`cells.status`, `campaign_counters.status`): of leaves
-/// (counted in volume) and of internal nodes.
-pub const LEAF_STATUSES: [&str; 6] = ["pending", "leased", "safe", "unsafe", "unresolved", "failed"];
-pub const ALL_STATUSES: [&str; 7] = ["pending", "leased", "safe", "unsafe", "unresolved", "failed", "split"];
+// Cell statuses, stored and shown: `tessera_protocol::CellStatus` (`as_str`/`parse`
+// for the stored text, serde and `api_name` outside the server).
 
-/// The same statuses as the API, reports, metrics and dashboard name them, in the same
-/// order (so status indices agree): a leaf stored as 'unsafe' is shown as
-/// `counterexample`. Such a leaf holds a re-checked counterexample somewhere in it; its
-/// volume is that of the whole cell, an upper bound on the unsafe initial states in it
-/// and not a measure of them, so it is not called "unsafe volume".
-///
-/// Why mapped here rather than migrated: the stored value sits under a CHECK constraint
-/// of the `cells` table, which SQLite changes only by copying the whole table (millions
-/// of rows after a night), and a migrated file could no longer be opened by the
-/// previous server version. Every status that leaves the server goes through [`shown`]
-/// and every status that comes in through [`stored`].
-pub const SHOWN_LEAF_STATUSES: [&str; 6] = ["pending", "leased", "safe", "counterexample", "unresolved", "failed"];
-pub const SHOWN_STATUSES: [&str; 7] = ["pending", "leased", "safe", "counterexample", "unresolved", "failed", "split"];
-
-/// The name a stored status goes by outside the server (see [`SHOWN_STATUSES`]).
-pub fn shown(stored: &str) -> &str {
-    match ALL_STATUSES.iter().position(|s| *s == stored) {
-        Some(i) => SHOWN_STATUSES[i],
-        None => stored,
-    }
-}
-
-/// The stored status of a name given from outside; `None` when it names no status.
-pub fn stored(shown: &str) -> Option<&'static str> {
-    SHOWN_STATUSES.iter().position(|s| *s == shown).map(|i| ALL_STATUSES[i])
+/// The cell status of a stored status text; an unknown text is an internal error
+/// (the CHECK constraint of `cells.status` admits none).
+pub fn cell_status(stored: &str) -> ApiResult<CellStatus> {
+    CellStatus::parse(stored).ok_or_else(|| ApiError::internal(format!("unknown stored cell status '{stored}'")))
 }
 
 /// Milliseconds since the Unix epoch.
@@ -91,14 +69,14 @@ impl CampaignInfo {
 
     /// The full box over all states (`{"name": [lo, hi]}`) of a cell given over the
     /// split dimensions; non-split states keep their envelope interval.
-    pub fn full_box(&self, cell: &[[f64; 2]]) -> serde_json::Map<String, serde_json::Value> {
+    pub fn full_box(&self, cell: &[[f64; 2]]) -> BTreeMap<String, [f64; 2]> {
         let mut full = self.envelope.clone();
         for (j, &k) in self.split.iter().enumerate() {
             if let Some(iv) = cell.get(j) {
                 full[k] = *iv;
             }
         }
-        self.states.iter().zip(full).map(|(n, [lo, hi])| (n.clone(), serde_json::json!([lo, hi]))).collect()
+        self.states.iter().cloned().zip(full).collect()
     }
 }
 
@@ -305,15 +283,16 @@ impl Store {
         Ok(Some(info))
     }
 
-    /// Counters of a campaign: status → (cells, volume).
-    pub async fn counters(&self, id: &str) -> ApiResult<HashMap<String, (i64, i64)>> {
+    /// Counters of a campaign: status → (cells, volume). A stored status this server
+    /// does not know is an error, not skipped: the counts must add up.
+    pub async fn counters(&self, id: &str) -> ApiResult<HashMap<CellStatus, (i64, i64)>> {
         let rows = sqlx::query("SELECT status, cells, volume FROM campaign_counters WHERE campaign_id = ?")
             .bind(id)
             .fetch_all(&self.pool)
             .await?;
         let mut m = HashMap::new();
         for r in rows {
-            m.insert(r.try_get::<String, _>(0)?, (r.try_get(1)?, r.try_get(2)?));
+            m.insert(cell_status(&r.try_get::<String, _>(0)?)?, (r.try_get(1)?, r.try_get(2)?));
         }
         Ok(m)
     }
@@ -321,16 +300,16 @@ impl Store {
 
 /// Accumulated counter changes of one transaction: (campaign, status) → (cells, volume).
 #[derive(Default, Debug)]
-pub struct Deltas(pub HashMap<(String, &'static str), (i64, i64)>);
+pub struct Deltas(pub HashMap<(String, CellStatus), (i64, i64)>);
 
 impl Deltas {
-    pub fn add(&mut self, campaign: &str, status: &'static str, cells: i64, volume: i64) {
+    pub fn add(&mut self, campaign: &str, status: CellStatus, cells: i64, volume: i64) {
         let e = self.0.entry((campaign.to_string(), status)).or_insert((0, 0));
         e.0 += cells;
         e.1 += volume;
     }
     /// Move one cell of `volume` from status `from` to `to`.
-    pub fn moved(&mut self, campaign: &str, from: &'static str, to: &'static str, volume: i64) {
+    pub fn moved(&mut self, campaign: &str, from: CellStatus, to: CellStatus, volume: i64) {
         if from != to {
             self.add(campaign, from, -1, -volume);
             self.add(campaign, to, 1, volume);
@@ -349,7 +328,7 @@ impl Deltas {
                 .bind(n)
                 .bind(v)
                 .bind(c)
-                .bind(*s)
+                .bind(s.as_str())
                 .execute(&mut **tx)
                 .await?;
             if !touched.contains(c) {
@@ -358,20 +337,27 @@ impl Deltas {
         }
         let mut done = Vec::new();
         let now = now_ms();
+        let open_statuses: Vec<&str> = CellStatus::ALL.into_iter().filter(|s| s.is_open()).map(CellStatus::as_str).collect();
+        let open_sql = format!(
+            "SELECT COALESCE(SUM(cells), 0) FROM campaign_counters WHERE campaign_id = ? AND status IN ({})",
+            vec!["?"; open_statuses.len()].join(", ")
+        );
         for c in touched {
-            let open: i64 = sqlx::query_scalar(
-                "SELECT COALESCE(SUM(cells), 0) FROM campaign_counters WHERE campaign_id = ? AND status IN ('pending', 'leased')",
-            )
-            .bind(&c)
-            .fetch_one(&mut **tx)
-            .await?;
+            let mut q = sqlx::query_scalar(&open_sql).bind(&c);
+            for s in &open_statuses {
+                q = q.bind(*s);
+            }
+            let open: i64 = q.fetch_one(&mut **tx).await?;
             if open == 0 {
                 let r = sqlx::query(
-                    "UPDATE campaigns SET state = 'done', finished_at = ?, updated_at = ? WHERE id = ? AND state IN ('running', 'paused')",
+                    "UPDATE campaigns SET state = ?, finished_at = ?, updated_at = ? WHERE id = ? AND state IN (?, ?)",
                 )
+                .bind(CampaignState::Done.as_str())
                 .bind(now)
                 .bind(now)
                 .bind(&c)
+                .bind(CampaignState::Running.as_str())
+                .bind(CampaignState::Paused.as_str())
                 .execute(&mut **tx)
                 .await?;
                 if r.rows_affected() > 0 {
@@ -380,25 +366,5 @@ impl Deltas {
             }
         }
         Ok(done)
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn shown_and_stored_statuses_correspond_one_to_one() {
-        for (i, s) in ALL_STATUSES.iter().enumerate() {
-            assert_eq!(shown(s), SHOWN_STATUSES[i]);
-            assert_eq!(stored(SHOWN_STATUSES[i]), Some(*s));
-        }
-        for (i, s) in LEAF_STATUSES.iter().enumerate() {
-            assert_eq!(shown(s), SHOWN_LEAF_STATUSES[i]);
-        }
-        assert_eq!(shown("unsafe"), "counterexample");
-        // The stored name is not accepted from outside.
-        assert_eq!(stored("unsafe"), None);
-        assert_eq!(stored("bogus"), None);
     }
 }

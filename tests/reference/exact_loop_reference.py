@@ -1,4 +1,4 @@
-"""Reference checks of the exact method (worker/tests/exact_reference.rs).
+"""Reference checks of the exact method (engine/tests/it/exact_reference.rs).
 
 `make DIR` writes small random linear closed loops (ours, for the test only): a plant
 with two states, one input, one disturbance and dyadic coefficients, two observations

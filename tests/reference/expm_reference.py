@@ -1,4 +1,4 @@
-"""Reference values for the exact method's discretisation (worker/tests/discretise_expm.rs).
+"""Reference values for the exact method's discretisation (engine/tests/it/discretise_expm.rs).
 
 For a few matrices A (entries multiples of 1/16, so exact in binary) and steps t, writes
 e^{At} and the integral of e^{As} over [0, t], each entry as the pair of adjacent

@@ -12,16 +12,18 @@
   const SINCE_SLACK_MS = 10000;
   const PAGE = 20000;
   const HISTORY_MS = 15000;
+  // The cell statuses come from the server, written into the page (one list, built
+  // from the server's status enum): name, label, leaf, drawing rank, bar position, colour.
+  const STATUSES = JSON.parse(document.getElementById('cell-statuses').textContent);
+  const LEAVES = STATUSES.filter((s) => s.leaf);
+  const byKey = (k) => LEAVES.slice().sort((a, b) => a[k] - b[k]).map((s) => s.name);
   // Drawing order, best to worst: where cells overlap in the chosen two axes (they
   // differ in the other dimensions) the worst status ends on top.
-  const SEVERITY = ['safe', 'pending', 'leased', 'unresolved', 'failed', 'counterexample'];
-  // A counterexample cell holds a checked counterexample somewhere in it: its volume
-  // bounds the unsafe volume in it from above and does not measure it.
-  const LABEL = {
-    safe: 'proven safe', counterexample: 'holds a counterexample', unresolved: 'unresolved',
-    pending: 'pending', leased: 'being checked', failed: 'failed (worker errors)',
-  };
-  const BAR_ORDER = ['safe', 'counterexample', 'unresolved', 'failed', 'leased', 'pending'];
+  const SEVERITY = byKey('rank');
+  const BAR_ORDER = byKey('bar');
+  const LABEL = Object.fromEntries(LEAVES.map((s) => [s.name, s.label]));
+  const COLOR = Object.fromEntries(LEAVES.map((s) => [s.name, s.color]));
+  const IS_LEAF = Object.fromEntries(STATUSES.map((s) => [s.name, s.leaf]));
   // Changes of a follow-up, drawn least important first so that losses end on top.
   const CHANGE_ORDER = ['same', 'still-safe', 'newly-safe', 'lost-safe', 'safe-counterexample'];
   const CHANGE_LABEL = {
@@ -34,9 +36,6 @@
     if (from === 'safe') return to === 'safe' ? 'still-safe' : (to === 'counterexample' ? 'safe-counterexample' : 'lost-safe');
     return to === 'safe' ? 'newly-safe' : 'same';
   }
-  const css = getComputedStyle(document.documentElement);
-  const COLOR = {};
-  for (const s of SEVERITY) COLOR[s] = css.getPropertyValue('--' + s).trim() || '#999';
 
   const $ = (id) => document.getElementById(id);
   let token = null;
@@ -103,8 +102,15 @@
     s.classList.toggle('error', !!isError);
   }
 
+  // Colour an element as status `s` (through the CSS object model: the page's policy
+  // refuses inline style attributes).
+  function swatch(e, s) {
+    e.style.background = COLOR[s] || '#999';
+    return e;
+  }
+
   function legend(container, statuses) {
-    container.replaceChildren(...statuses.map((s) => el('span', {}, el('i', { class: 's-' + s }), LABEL[s])));
+    container.replaceChildren(...statuses.map((s) => el('span', {}, swatch(el('i', {}), s), LABEL[s])));
   }
 
   function volumeBar(container, cov) {
@@ -115,7 +121,7 @@
       if (!st) continue;
       tip.push(LABEL[s] + ': ' + fmtPct(st.fraction) + ' (' + st.reduced + ')');
       if (st.fraction > 0) {
-        const seg = el('span', { class: 's-' + s, title: LABEL[s] + ': ' + fmtPct(st.fraction) });
+        const seg = swatch(el('span', { title: LABEL[s] + ': ' + fmtPct(st.fraction) }), s);
         // Set through the CSS object model: the page's policy refuses inline style attributes.
         seg.style.width = (100 * st.fraction) + '%';
         parts.push(seg);
@@ -296,7 +302,7 @@
       }
       for (const row of page.rows) {
         const s = page.statuses[row[1]];
-        if (s === 'split') M.cells.delete(row[0]);
+        if (!IS_LEAF[s]) M.cells.delete(row[0]);
         else M.cells.set(row[0], { s, d: row[2], b: row.slice(3) });
       }
       if (page.rows.length) M.dirty = true;
@@ -633,7 +639,7 @@
     ctx.rect(f.m.l, f.m.t, f.pw, f.ph);
     ctx.clip();
     for (const k of CHANGE_ORDER) {
-      ctx.fillStyle = css.getPropertyValue('--ch-' + k).trim() || '#999';
+      ctx.fillStyle = getComputedStyle(document.documentElement).getPropertyValue('--ch-' + k).trim() || '#999';
       for (const cell of buckets[k]) {
         const [x0, x1] = cellIv(cell, ax);
         const [y0, y1] = cellIv(cell, ay);
@@ -727,7 +733,8 @@
     // For tests (read from the element), not shown on the page.
     cv.dataset.ticks = JSON.stringify({ unit: axis.unit, step: axis.step, labels: axis.ticks.map((t) => t.label) });
     let base = pts.map(() => 0);
-    for (const s of ['safe', 'counterexample', 'unresolved']) {
+    // The decided statuses the history gives, in bar order.
+    for (const s of BAR_ORDER.filter((k) => typeof pts[0][k] === 'number')) {
       const top = pts.map((p, i) => base[i] + p[s]);
       ctx.beginPath();
       pts.forEach((p, i) => {

@@ -82,6 +82,7 @@ async fn every_route_and_role_gives_the_expected_status() {
     assert!(routes.len() >= 22);
     let mut checked = 0;
     for r in &routes {
+        let r = &r.doc;
         let method = r.method.as_str();
         let expected = expected_roles(method, r.path)
             .unwrap_or_else(|| panic!("route {method} {} is missing from the test's matrix", r.path));
@@ -137,7 +138,7 @@ async fn openapi_lists_exactly_the_routes_served() {
         }
     }
     let served: BTreeSet<(String, String)> =
-        tessera_server::routes().iter().map(|r| (r.method.as_str().to_string(), r.path.to_string())).collect();
+        tessera_server::routes().iter().map(|r| (r.doc.method.as_str().to_string(), r.doc.path.to_string())).collect();
     assert_eq!(documented, served);
     // Every documented route is really routed: none falls through to the 404 fallback.
     for (m, path) in &documented {

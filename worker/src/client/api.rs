@@ -2,7 +2,8 @@
 //! loop and the `tessera` command. Plain HTTP: TLS, where needed, belongs to a proxy.
 
 use serde::de::DeserializeOwned;
-use serde::{Deserialize, Serialize};
+use serde::Serialize;
+use tessera_protocol::{ExtendAnswer, ExtendRequest, LeaseRequest, ReleaseAnswer, SubmitAnswer, SubmitRequest};
 use std::time::Duration;
 
 /// What went wrong talking to the server.
@@ -34,39 +35,9 @@ pub struct Api {
     agent: ureq::Agent,
 }
 
-/// One leased cell as the server hands it out.
-#[derive(Clone, Debug, Serialize, Deserialize)]
-pub struct LeasedCell {
-    pub cell_id: String,
-    pub lease_id: String,
-    pub campaign_id: String,
-    pub spec_hash: String,
-    pub depth: u32,
-    #[serde(rename = "box")]
-    pub cell_box: std::collections::BTreeMap<String, [f64; 2]>,
-    pub expires_at_ms: i64,
-}
-
-#[derive(Debug, Deserialize)]
-pub struct LeaseAnswer {
-    pub leases: Vec<LeasedCell>,
-    pub lease_seconds: f64,
-}
-
-/// One result to submit.
-#[derive(Clone, Debug, Serialize)]
-pub struct ResultItem {
-    pub lease_id: String,
-    pub result: serde_json::Value,
-    pub elapsed_ms: Option<f64>,
-}
-
-/// The server's answer for one submitted result or extended lease.
-#[derive(Clone, Debug, Deserialize)]
-pub struct ItemAnswer {
-    pub lease_id: String,
-    pub status: String,
-}
+/// The wire types of the worker protocol live in the protocol crate, shared with the
+/// server; re-exported here for the client's callers.
+pub use tessera_protocol::{ItemAnswer, LeaseAnswer, LeasedCell, ResultItem};
 
 impl Api {
     /// `base` is the server's address, e.g. `http://127.0.0.1:8470`.
@@ -116,12 +87,12 @@ impl Api {
         Ok(buf)
     }
 
-    pub fn post_json<T: DeserializeOwned>(&self, path: &str, body: &serde_json::Value) -> Result<T, ApiError> {
+    pub fn post_json<T: DeserializeOwned>(&self, path: &str, body: &impl Serialize) -> Result<T, ApiError> {
         let r = self
             .agent
             .post(&self.url(path))
             .set("Authorization", &format!("Bearer {}", self.token))
-            .send_json(body.clone());
+            .send_json(body);
         Self::answer(r)?.into_json().map_err(|e| ApiError::Transport(e.to_string()))
     }
 
@@ -136,26 +107,26 @@ impl Api {
     }
 
     pub fn lease(&self, max: u32, worker: &str) -> Result<LeaseAnswer, ApiError> {
-        self.post_json("/api/v1/leases", &serde_json::json!({"max": max, "worker": worker}))
+        self.post_json("/api/v1/leases", &LeaseRequest { max, worker: Some(worker.to_string()), campaign_id: None })
     }
 
     pub fn extend(&self, lease_ids: &[String]) -> Result<Vec<ItemAnswer>, ApiError> {
-        let v: serde_json::Value = self.post_json("/api/v1/leases/extend", &serde_json::json!({"lease_ids": lease_ids}))?;
-        serde_json::from_value(v["items"].clone()).map_err(|e| ApiError::Transport(e.to_string()))
+        let a: ExtendAnswer = self.post_json("/api/v1/leases/extend", &ExtendRequest { lease_ids: lease_ids.to_vec() })?;
+        Ok(a.items)
     }
 
     pub fn release(&self, lease_ids: &[String]) -> Result<Vec<ItemAnswer>, ApiError> {
-        let v: serde_json::Value = self.post_json("/api/v1/leases/release", &serde_json::json!({"lease_ids": lease_ids}))?;
-        serde_json::from_value(v["items"].clone()).map_err(|e| ApiError::Transport(e.to_string()))
+        let a: ReleaseAnswer = self.post_json("/api/v1/leases/release", &ExtendRequest { lease_ids: lease_ids.to_vec() })?;
+        Ok(a.items)
     }
 
     pub fn submit(&self, worker: &str, results: &[ResultItem]) -> Result<Vec<ItemAnswer>, ApiError> {
-        let body = serde_json::json!({
-            "worker": worker,
-            "engine_version": tessera_engine::verdict::ENGINE_VERSION,
-            "results": results,
-        });
-        let v: serde_json::Value = self.post_json("/api/v1/results", &body)?;
-        serde_json::from_value(v["items"].clone()).map_err(|e| ApiError::Transport(e.to_string()))
+        let body = SubmitRequest {
+            worker: Some(worker.to_string()),
+            engine_version: Some(tessera_engine::verdict::ENGINE_VERSION.to_string()),
+            results: results.to_vec(),
+        };
+        let a: SubmitAnswer = self.post_json("/api/v1/results", &body)?;
+        Ok(a.items)
     }
 }

@@ -5,6 +5,7 @@
 //! away or refuses whole requests the outbox waits with exponential backoff.
 
 use super::api::{ApiError, ItemAnswer, ResultItem};
+use tessera_protocol::FailedAttempt;
 use std::collections::VecDeque;
 use std::time::{Duration, Instant};
 
@@ -100,9 +101,8 @@ impl Outbox {
                     // attempt is counted and its last_error says why).
                     let w = &mut self.waiting[0];
                     tracing::error!(lease = %w.item.lease_id, "a result of {bytes} bytes was refused as too large: {e}");
-                    w.item.result = serde_json::json!({
-                        "error": format!("the verdict ({bytes} bytes of JSON) was refused by the server as too large")
-                    });
+                    w.item.result =
+                        FailedAttempt::value(format!("the verdict ({bytes} bytes of JSON) was refused by the server as too large"));
                     w.bytes = encoded_len(&w.item) + 1;
                 }
                 Err(e) => {
@@ -174,11 +174,9 @@ fn fit(mut item: ResultItem) -> ResultItem {
     let bytes = encoded_len(&item);
     if bytes + ENVELOPE_BYTES > SERVER_BODY_LIMIT {
         tracing::error!(lease = %item.lease_id, "a result of {bytes} bytes exceeds the server's request limit");
-        item.result = serde_json::json!({
-            "error": format!(
-                "the verdict ({bytes} bytes of JSON) exceeds the server's request limit of {SERVER_BODY_LIMIT} bytes"
-            )
-        });
+        item.result = FailedAttempt::value(format!(
+            "the verdict ({bytes} bytes of JSON) exceeds the server's request limit of {SERVER_BODY_LIMIT} bytes"
+        ));
     }
     item
 }
@@ -190,17 +188,23 @@ mod tests {
     fn item(i: usize, payload: usize) -> ResultItem {
         ResultItem {
             lease_id: format!("lease-{i}"),
+            cell_id: None,
             result: serde_json::json!({"verdict": "unsafe", "pad": "x".repeat(payload)}),
             elapsed_ms: Some(1.0),
         }
     }
 
     fn accept_all(items: &[ResultItem]) -> Vec<ItemAnswer> {
-        items.iter().map(|r| ItemAnswer { lease_id: r.lease_id.clone(), status: "accepted".into() }).collect()
+        items.iter().map(|r| ItemAnswer::new(&r.lease_id, tessera_protocol::LeaseStatus::Accepted)).collect()
     }
 
     fn body_len(items: &[ResultItem]) -> usize {
-        serde_json::to_vec(&serde_json::json!({"worker": "w", "engine_version": "0", "results": items})).unwrap().len()
+        let body = tessera_protocol::SubmitRequest {
+            worker: Some("w".into()),
+            engine_version: Some("0".into()),
+            results: items.to_vec(),
+        };
+        serde_json::to_vec(&body).unwrap().len()
     }
 
     /// A stand-in for the server's body limit: 413 above `limit` bytes, else accepted.

@@ -6,6 +6,7 @@
 
 use super::api::{Api, ApiError, LeasedCell, ResultItem};
 use super::outbox::Outbox;
+use tessera_protocol::{FailedAttempt, LeaseStatus};
 use tessera_engine::check::check_cell;
 use tessera_engine::closed_loop::ClosedLoop;
 use tessera_engine::net::{self, Network};
@@ -110,8 +111,8 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
         // Deliver results; the outbox keeps each one until the server has answered it.
         if !outbox.is_empty() {
             let answers = outbox.deliver(Instant::now(), |items| api.submit(&opts.name, items));
-            for a in answers.iter().filter(|a| a.status != "accepted") {
-                tracing::warn!(lease = %a.lease_id, status = %a.status, "result not accepted");
+            for a in answers.iter().filter(|a| a.status != LeaseStatus::Accepted) {
+                tracing::warn!(lease = %a.lease_id, status = a.status.as_str(), "result not accepted");
             }
             if let Some(f) = ack_log.as_mut() {
                 log_acknowledged(f, &answers);
@@ -149,8 +150,8 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
             let ids: Vec<String> = held.keys().cloned().collect();
             match api.extend(&ids) {
                 Ok(items) => {
-                    for it in items.iter().filter(|i| i.status != "extended") {
-                        tracing::warn!(lease = %it.lease_id, status = %it.status, "lease not extended");
+                    for it in items.iter().filter(|i| i.status != LeaseStatus::Extended) {
+                        tracing::warn!(lease = %it.lease_id, status = it.status.as_str(), "lease not extended");
                     }
                 }
                 Err(e) => tracing::warn!("extending {} leases failed: {e}", ids.len()),
@@ -171,7 +172,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
             };
             match api.lease(want.max(1) as u32, &opts.name) {
                 Ok(answer) => {
-                    lease_seconds = answer.lease_seconds.max(1.0);
+                    lease_seconds = (answer.lease_seconds as f64).max(1.0);
                     backoff = Duration::from_millis(200);
                     if answer.leases.is_empty() {
                         let since = *idle_since.get_or_insert_with(Instant::now);
@@ -227,7 +228,7 @@ pub fn run(opts: RunOptions, stop: Arc<AtomicBool>) -> anyhow::Result<RunSummary
 fn log_acknowledged(f: &mut std::fs::File, answers: &[super::api::ItemAnswer]) {
     use std::io::Write;
     let mut text = String::new();
-    for a in answers.iter().filter(|a| a.status == "accepted" || a.status == "duplicate") {
+    for a in answers.iter().filter(|a| matches!(a.status, LeaseStatus::Accepted | LeaseStatus::Duplicate)) {
         text.push_str(&a.lease_id);
         text.push('\n');
     }
@@ -240,7 +241,7 @@ fn log_acknowledged(f: &mut std::fs::File, answers: &[super::api::ItemAnswer]) {
 fn finished(d: Done, held: &mut HashMap<String, LeasedCell>, outbox: &mut Outbox, summary: &mut RunSummary) {
     held.remove(&d.lease_id);
     summary.cells += 1;
-    outbox.push(ResultItem { lease_id: d.lease_id, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
+    outbox.push(ResultItem { lease_id: d.lease_id, cell_id: None, result: d.result, elapsed_ms: Some(d.elapsed_ms) });
 }
 
 /// Queue a leased cell for the engine threads once its closed loop is at hand. If
@@ -274,7 +275,8 @@ fn start_cell(
             held.remove(&cell.lease_id);
             outbox.push(ResultItem {
                 lease_id: cell.lease_id.clone(),
-                result: serde_json::json!({"error": msg}),
+                cell_id: None,
+                result: FailedAttempt::value(msg),
                 elapsed_ms: None,
             });
         }
@@ -328,18 +330,18 @@ fn engine_thread(q: Arc<Queue>, tx: mpsc::Sender<Done>) {
 fn run_cell(job: &Job) -> serde_json::Value {
     let cell = match job.loop_.cell_from_map(&job.cell.cell_box) {
         Ok(c) => c,
-        Err(e) => return serde_json::json!({"error": e.to_string()}),
+        Err(e) => return FailedAttempt::value(e.to_string()),
     };
     let l = job.loop_.clone();
     match std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| check_cell(&l, &cell))) {
-        Ok(v) => serde_json::to_value(&v).unwrap_or_else(|e| serde_json::json!({"error": e.to_string()})),
+        Ok(v) => serde_json::to_value(&v).unwrap_or_else(|e| FailedAttempt::value(e.to_string())),
         Err(p) => {
             let msg = p
                 .downcast_ref::<String>()
                 .cloned()
                 .or_else(|| p.downcast_ref::<&str>().map(|s| s.to_string()))
                 .unwrap_or_else(|| "engine panic".into());
-            serde_json::json!({"error": format!("engine failure: {msg}")})
+            FailedAttempt::value(format!("engine failure: {msg}"))
         }
     }
 }
