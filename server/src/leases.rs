@@ -548,45 +548,29 @@ pub async fn submit(
                 false
             }
         };
-        let status = match &outcome {
-            Outcome::Safe => CellStatus::Safe,
-            Outcome::Error(text) => {
-                attempts += 1;
-                error = Some(text.clone());
-                if attempts >= limits.max_attempts as i64 {
-                    CellStatus::Failed
-                } else {
-                    CellStatus::Pending
-                }
-            }
-            Outcome::Unsafe | Outcome::Inconclusive(_) => {
-                // A re-joined cell of a follow-up that is not proven safe falls back to
-                // the earlier campaign's two halves, whatever the verdict.
-                let coarse = h.coarse_dim.filter(|&d| d < h.cell.len());
-                let wants_split = matches!(outcome, Outcome::Inconclusive(_)) || info.refine_unsafe || coarse.is_some();
-                let final_status =
-                    if matches!(outcome, Outcome::Unsafe) { CellStatus::Counterexample } else { CellStatus::Unresolved };
-                let hint = match &outcome {
-                    Outcome::Inconclusive(Some(name)) => {
-                        info.split.iter().position(|&k| info.states.get(k) == Some(name))
-                    }
-                    _ => None,
-                };
-                match coarse.or_else(|| refine::choose_dim(&h.cell, &info.split_envelope, hint)) {
-                    Some(d) if wants_split && h.depth < info.max_depth && can_split(&mut room) => {
-                        match refine::bisect(&h.cell, d) {
-                            Some((a, b)) => {
-                                split_dim = Some(d as i64);
-                                children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, a));
-                                children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, b));
-                                deltas.add(&h.campaign_id, CellStatus::Pending, 2, vol);
-                                CellStatus::Split
-                            }
-                            None => final_status,
-                        }
-                    }
-                    _ => final_status,
-                }
+        let hint = match &outcome {
+            Outcome::Inconclusive(Some(name)) => info.split.iter().position(|&k| info.states.get(k) == Some(name)),
+            _ => None,
+        };
+        let cell_now = refine::CellNow { cell: &h.cell, depth: h.depth, attempts: h.attempts, coarse_dim: h.coarse_dim };
+        let rules = refine::Rules {
+            max_depth: info.max_depth,
+            refine_unsafe: info.refine_unsafe,
+            split_envelope: &info.split_envelope,
+            max_attempts: limits.max_attempts,
+        };
+        if let Outcome::Error(text) = &outcome {
+            attempts += 1;
+            error = Some(text.clone());
+        }
+        let status = match refine::next_state(&outcome, hint, &cell_now, &rules, || can_split(&mut room)) {
+            refine::NextState::Takes(status) => status,
+            refine::NextState::Split { dim, halves: (a, b) } => {
+                split_dim = Some(dim as i64);
+                children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, a));
+                children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, b));
+                deltas.add(&h.campaign_id, CellStatus::Pending, 2, vol);
+                CellStatus::Split
             }
         };
         // A split node leaves the leaf volume (its halves were added above). Internal

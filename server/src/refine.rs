@@ -5,6 +5,8 @@
 //! volume `2^max_depth`, and each cut halves the count exactly. Fractions of the
 //! envelope are therefore exact rationals `n / 2^max_depth`.
 
+use tessera_protocol::{CellStatus, Outcome};
+
 /// `[lo, hi]` for each split dimension, in the order of `refinement.split`.
 pub type CellBox = Vec<[f64; 2]>;
 
@@ -127,9 +129,149 @@ pub fn reduced_fraction(n: i64, max_depth: u32) -> String {
     format!("{}/{}", p / g, q / g)
 }
 
+/// Where a cell goes once a result for it is accepted: the queue policy, without SQL
+/// (the caller stores what it says and moves the counters).
+#[derive(Debug, Clone, PartialEq)]
+pub enum NextState {
+    /// The cell takes this status: a leaf verdict (`Safe`, `Counterexample`,
+    /// `Unresolved`), `Failed` after its last allowed error, or `Pending` to be leased
+    /// again after an error.
+    Takes(CellStatus),
+    /// The cell becomes an inner node cut along `dim` (an index into its box) into two
+    /// pending halves that tile it exactly.
+    Split { dim: usize, halves: (CellBox, CellBox) },
+}
+
+/// What the policy needs to know of the cell when the result arrives.
+pub struct CellNow<'a> {
+    pub cell: &'a [[f64; 2]],
+    pub depth: u32,
+    /// Engine errors charged to the cell before this result.
+    pub attempts: i64,
+    /// A follow-up's re-joined cell: cut here, into the earlier campaign's halves,
+    /// unless proven safe.
+    pub coarse_dim: Option<usize>,
+}
+
+/// The campaign's rules for its cells.
+pub struct Rules<'a> {
+    pub max_depth: u32,
+    /// Cut cells with a counterexample too (else they stay leaves).
+    pub refine_unsafe: bool,
+    /// The envelope of the split dimensions (for the widest-relative fallback).
+    pub split_envelope: &'a [[f64; 2]],
+    /// Engine errors after which a cell is `Failed`.
+    pub max_attempts: u32,
+}
+
+/// The next state of a cell given the outcome of its result. `hint` is the worker's
+/// split hint as an index into the box. `may_split` is asked only when a cut is
+/// otherwise due (it spends the batch's room for new cells), so a `false` leaves the
+/// cell with its leaf status. Guarantees: a split's halves are [`bisect`]'s (they tile
+/// the cell); a cell at `max_depth` is never split; a safe cell is never split.
+pub fn next_state(outcome: &Outcome, hint: Option<usize>, now: &CellNow, rules: &Rules, may_split: impl FnOnce() -> bool) -> NextState {
+    let leaf = match outcome {
+        Outcome::Safe => return NextState::Takes(CellStatus::Safe),
+        Outcome::Error(_) => {
+            let failed = now.attempts + 1 >= rules.max_attempts as i64;
+            return NextState::Takes(if failed { CellStatus::Failed } else { CellStatus::Pending });
+        }
+        Outcome::Unsafe => CellStatus::Counterexample,
+        Outcome::Inconclusive(_) => CellStatus::Unresolved,
+    };
+    // A re-joined cell of a follow-up that is not proven safe falls back to the earlier
+    // campaign's two halves, whatever the verdict.
+    let coarse = now.coarse_dim.filter(|&d| d < now.cell.len());
+    let wants_split = leaf == CellStatus::Unresolved || rules.refine_unsafe || coarse.is_some();
+    if !wants_split || now.depth >= rules.max_depth {
+        return NextState::Takes(leaf);
+    }
+    let Some(dim) = coarse.or_else(|| choose_dim(now.cell, rules.split_envelope, hint)) else {
+        return NextState::Takes(leaf);
+    };
+    if !may_split() {
+        return NextState::Takes(leaf);
+    }
+    match bisect(now.cell, dim) {
+        Some(halves) => NextState::Split { dim, halves },
+        None => NextState::Takes(leaf),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn rules(envelope: &[[f64; 2]]) -> Rules<'_> {
+        Rules { max_depth: 3, refine_unsafe: false, split_envelope: envelope, max_attempts: 3 }
+    }
+
+    fn now(cell: &[[f64; 2]], depth: u32) -> CellNow<'_> {
+        CellNow { cell, depth, attempts: 0, coarse_dim: None }
+    }
+
+    fn never() -> bool {
+        panic!("the room for new cells must not be asked for")
+    }
+
+    #[test]
+    fn safe_cells_stay_leaves_and_never_ask_for_room() {
+        let env = [[0.0, 1.0], [0.0, 4.0]];
+        let r = rules(&env);
+        assert_eq!(next_state(&Outcome::Safe, Some(0), &now(&env, 0), &r, never), NextState::Takes(CellStatus::Safe));
+        let coarse = CellNow { coarse_dim: Some(1), ..now(&env, 0) };
+        assert_eq!(next_state(&Outcome::Safe, None, &coarse, &r, never), NextState::Takes(CellStatus::Safe));
+    }
+
+    #[test]
+    fn errors_requeue_until_the_last_attempt() {
+        let env = [[0.0, 1.0]];
+        let r = rules(&env);
+        let err = Outcome::Error("boom".into());
+        for (before, want) in [(0, CellStatus::Pending), (1, CellStatus::Pending), (2, CellStatus::Failed), (7, CellStatus::Failed)] {
+            let c = CellNow { attempts: before, ..now(&env, 1) };
+            assert_eq!(next_state(&err, None, &c, &r, never), NextState::Takes(want), "{before} attempts before");
+        }
+    }
+
+    #[test]
+    fn inconclusive_cells_split_along_the_hint_until_max_depth() {
+        let env = [[0.0, 1.0], [0.0, 4.0]];
+        let r = rules(&env);
+        let inc = Outcome::Inconclusive(None);
+        // The hint wins over the widest-relative rule (which would pick either: both are full width).
+        match next_state(&inc, Some(1), &now(&env, 0), &r, || true) {
+            NextState::Split { dim, halves: (a, b) } => {
+                assert_eq!(dim, 1);
+                assert_eq!((a[1], b[1]), ([0.0, 2.0], [2.0, 4.0]), "halves meet at the midpoint");
+                assert_eq!((a[0], b[0]), (env[0], env[0]), "the other dimension is kept");
+            }
+            other => panic!("expected a split, got {other:?}"),
+        }
+        // Without a hint: the widest relative to the envelope.
+        let cell = [[0.0, 0.25], [0.0, 4.0]];
+        assert!(matches!(next_state(&inc, None, &now(&cell, 2), &r, || true), NextState::Split { dim: 1, .. }));
+        // At the deepest level, or without room, the cell stays an unresolved leaf.
+        assert_eq!(next_state(&inc, Some(0), &now(&env, 3), &r, never), NextState::Takes(CellStatus::Unresolved));
+        assert_eq!(next_state(&inc, Some(0), &now(&env, 0), &r, || false), NextState::Takes(CellStatus::Unresolved));
+        // A cell too thin to cut in any dimension stays a leaf.
+        let thin = [[1.0, 1.0], [2.0, 2.0]];
+        assert_eq!(next_state(&inc, None, &now(&thin, 0), &r, never), NextState::Takes(CellStatus::Unresolved));
+    }
+
+    #[test]
+    fn counterexamples_split_only_when_asked_or_when_rejoined() {
+        let env = [[0.0, 1.0], [0.0, 4.0]];
+        let uns = Outcome::Unsafe;
+        let plain = rules(&env);
+        assert_eq!(next_state(&uns, Some(0), &now(&env, 0), &plain, never), NextState::Takes(CellStatus::Counterexample));
+        let refine = Rules { refine_unsafe: true, ..rules(&env) };
+        assert!(matches!(next_state(&uns, Some(0), &now(&env, 0), &refine, || true), NextState::Split { dim: 0, .. }));
+        // A follow-up's re-joined cell is cut along its earlier cut, not along the hint.
+        let coarse = CellNow { coarse_dim: Some(1), ..now(&env, 0) };
+        assert!(matches!(next_state(&uns, Some(0), &coarse, &plain, || true), NextState::Split { dim: 1, .. }));
+        assert!(matches!(next_state(&Outcome::Inconclusive(None), Some(0), &coarse, &plain, || true), NextState::Split { dim: 1, .. }));
+    }
 
     #[test]
     fn volumes_halve_exactly() {

@@ -8,6 +8,7 @@ mod dashboard_browser;
 mod deploy_files;
 mod e2e_campaign;
 mod followup_degraded;
+mod layering;
 mod load;
 mod pipeline_gate;
 mod server_outage;
