@@ -26,6 +26,9 @@ fi
 map=$(mktemp)
 trap 'rm -f "$map"' EXIT
 t0=$SECONDS
+# `cargo test` builds a package's binaries only for its own tests; the end-to-end tests
+# start every binary (the `tessera` command of tessera-cli too).
+cargo build --workspace --bins
 cargo test --workspace --no-run --message-format=json-render-diagnostics | python3 tests/stage_times.py map "$map"
 build_s=$((SECONDS - t0))
 t0=$SECONDS

@@ -1,7 +1,8 @@
 //! Helpers shared by the end-to-end tests (process start-up, loopback ports).
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::process::Child;
+use std::time::{Duration, Instant};
 
 /// A binary of the workspace from the target folder the test runs from. The
 /// workspace's test command (`cargo test --workspace`) builds every binary first.
@@ -11,6 +12,33 @@ pub fn bin(name: &str) -> PathBuf {
     let p = dir.join(name);
     assert!(p.exists(), "{} is missing: run the workspace's tests (`cargo test --workspace`) so it gets built", p.display());
     p
+}
+
+/// Wait until the server at `url` answers `/healthz` (polled every 20 ms, at most 30 s).
+pub fn wait_until_up(url: &str) {
+    let t0 = Instant::now();
+    while ureq::get(&format!("{url}/healthz")).call().is_err() {
+        assert!(t0.elapsed() < Duration::from_secs(30), "the server at {url} did not come up within 30 s");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// The token a server wrote to its bootstrap token file (`--bootstrap-token-file`).
+pub fn read_token(file: &Path) -> String {
+    std::fs::read_to_string(file).unwrap_or_else(|e| panic!("{}: {e}", file.display())).trim().to_string()
+}
+
+/// Child processes killed (and reaped) when the guard goes out of scope, so a failing
+/// test leaves none behind.
+pub struct Procs(pub Vec<Child>);
+
+impl Drop for Procs {
+    fn drop(&mut self) {
+        for c in &mut self.0 {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
 }
 
 /// A child process killed (and reaped) when the guard goes out of scope, so a failing

@@ -6,7 +6,7 @@
 use serde_json::{json, Value};
 use std::path::Path;
 use std::process::{Command, Stdio};
-use std::time::{Duration, Instant};
+use std::time::Duration;
 use tessera_tests::{bin, Server};
 
 
@@ -48,12 +48,8 @@ fn bad_inputs_get_a_clear_4xx_and_change_nothing() {
             .spawn()
             .unwrap(),
     );
-    let t0 = Instant::now();
-    while ureq::get(&format!("{url}/healthz")).call().is_err() {
-        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
-        std::thread::sleep(Duration::from_millis(100));
-    }
-    let admin = std::fs::read_to_string(dir.join("admin.token")).unwrap().trim().to_string();
+    tessera_tests::wait_until_up(&url);
+    let admin = tessera_tests::read_token(&dir.join("admin.token"));
 
     // A valid base: the lander demo with its model uploaded.
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo/lander");
@@ -231,12 +227,8 @@ fn results_for_ended_leases_or_other_cells_are_refused_and_not_counted() {
             .spawn()
             .unwrap(),
     );
-    let t0 = Instant::now();
-    while ureq::get(&format!("{url}/healthz")).call().is_err() {
-        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
-        std::thread::sleep(Duration::from_millis(50));
-    }
-    let admin = std::fs::read_to_string(dir.join("admin.token")).unwrap().trim().to_string();
+    tessera_tests::wait_until_up(&url);
+    let admin = tessera_tests::read_token(&dir.join("admin.token"));
     let (st, tok) = call("POST", &format!("{url}/api/v1/admin/tokens"), &admin, Some((br#"{"role":"worker"}"#, "application/json")));
     assert_eq!(st, 201, "{tok}");
     let worker = tok["token"].as_str().unwrap().to_string();

@@ -86,11 +86,7 @@ impl Setup {
             .stderr(log)
             .spawn()
             .unwrap();
-        let t0 = Instant::now();
-        while ureq::get(&format!("{}/healthz", self.url)).call().is_err() {
-            assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up (incarnation {incarnation})");
-            std::thread::sleep(Duration::from_millis(20));
-        }
+        tessera_tests::wait_until_up(&self.url);
         c
     }
 
@@ -174,7 +170,7 @@ fn campaign_survives_worker_and_server_kills_and_loses_nothing() {
     let mut procs = Procs::default();
     let mut server_incarnation = 0;
     procs.server = Some(s.spawn_server(server_incarnation));
-    let admin = std::fs::read_to_string(s.dir.join("admin.token")).unwrap().trim().to_string();
+    let admin = tessera_tests::read_token(&s.dir.join("admin.token"));
 
     let model = write_model(&s.dir);
     let up: Value = ureq::post(&format!("{}/api/v1/models", s.url))

@@ -28,16 +28,6 @@ fn term(c: &Child) {
     }
 }
 
-struct Guard(Vec<Child>);
-impl Drop for Guard {
-    fn drop(&mut self) {
-        for c in &mut self.0 {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
-    }
-}
-
 fn write_small_lander(dir: &Path) -> PathBuf {
     let demo = Path::new(env!("CARGO_MANIFEST_DIR")).join("../demo/lander");
     std::fs::copy(demo.join("lander.onnx"), dir.join("lander.onnx")).unwrap();
@@ -60,7 +50,7 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
     let url = format!("http://127.0.0.1:{port}");
     let db = dir.join("tessera.sqlite");
     let admin_file = dir.join("admin.token");
-    let mut guard = Guard(Vec::new());
+    let mut guard = tessera_tests::Procs(Vec::new());
 
     let server_log = std::fs::File::create(dir.join("server.log")).unwrap();
     guard.0.push(
@@ -75,12 +65,8 @@ fn two_workers_finish_a_campaign_and_a_killed_worker_loses_nothing() {
             .spawn()
             .unwrap(),
     );
-    let t0 = Instant::now();
-    while ureq::get(&format!("{url}/healthz")).call().is_err() {
-        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
-        std::thread::sleep(Duration::from_millis(100));
-    }
-    let admin = std::fs::read_to_string(&admin_file).unwrap().trim().to_string();
+    tessera_tests::wait_until_up(&url);
+    let admin = tessera_tests::read_token(&admin_file);
 
     // The client uploads the model, rewrites the reference and creates the campaign.
     let out = Command::new(bin("tessera"))

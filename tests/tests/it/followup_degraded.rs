@@ -19,8 +19,7 @@
 
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Output, Stdio};
-use std::time::{Duration, Instant};
+use std::process::{Command, Output, Stdio};
 use tessera_tests::bin;
 
 
@@ -30,16 +29,6 @@ fn free_port() -> u16 {
 
 fn get(url: &str, token: &str) -> Value {
     ureq::get(url).set("Authorization", &format!("Bearer {token}")).call().unwrap().into_json().unwrap()
-}
-
-struct Guard(Vec<Child>);
-impl Drop for Guard {
-    fn drop(&mut self) {
-        for c in &mut self.0 {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
-    }
 }
 
 fn text(o: &Output) -> String {
@@ -117,7 +106,7 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
     let url = format!("http://127.0.0.1:{port}");
     let db = dir.join("tessera.sqlite");
     let admin_file = dir.join("admin.token");
-    let mut guard = Guard(Vec::new());
+    let mut guard = tessera_tests::Procs(Vec::new());
     guard.0.push(
         Command::new(bin("tessera-server"))
             .args(["serve", "--listen", &format!("127.0.0.1:{port}"), "--lease-seconds", "30"])
@@ -130,12 +119,8 @@ fn a_degraded_controller_shows_safe_volume_turned_unsafe() {
             .spawn()
             .unwrap(),
     );
-    let t0 = Instant::now();
-    while ureq::get(&format!("{url}/healthz")).call().is_err() {
-        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
-        std::thread::sleep(Duration::from_millis(100));
-    }
-    let admin = std::fs::read_to_string(&admin_file).unwrap().trim().to_string();
+    tessera_tests::wait_until_up(&url);
+    let admin = tessera_tests::read_token(&admin_file);
     let tok = Command::new(bin("tessera-server")).args(["token", "create", "--role", "worker", "--db"]).arg(&db).output().unwrap();
     assert!(tok.status.success());
     let worker_token = String::from_utf8(tok.stdout).unwrap().trim().lines().last().unwrap().to_string();

@@ -216,12 +216,8 @@ fn run_load(clients: usize, seconds: f64) {
             .spawn()
             .unwrap(),
     );
-    let t0 = Instant::now();
-    while ureq::get(&format!("{url}/healthz")).call().is_err() {
-        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
-        std::thread::sleep(Duration::from_millis(50));
-    }
-    let admin = std::fs::read_to_string(dir.join("admin.token")).unwrap().trim().to_string();
+    tessera_tests::wait_until_up(&url);
+    let admin = tessera_tests::read_token(&dir.join("admin.token"));
     let token = |role: &str| -> String {
         let v: Value = ureq::post(&format!("{url}/api/v1/admin/tokens"))
             .set("Authorization", &format!("Bearer {admin}"))

@@ -27,16 +27,6 @@ use tessera_tests::bin;
 
 const SERVER_BODY_LIMIT: usize = 1024 * 1024;
 
-struct Procs(Vec<Child>);
-impl Drop for Procs {
-    fn drop(&mut self) {
-        for c in &mut self.0 {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
-    }
-}
-
 fn spawn_server(dir: &Path, port: u16, db: &Path, incarnation: usize) -> Child {
     let log = std::fs::File::create(dir.join(format!("server-{incarnation}.log"))).unwrap();
     let c = Command::new(bin("tessera-server"))
@@ -49,11 +39,7 @@ fn spawn_server(dir: &Path, port: u16, db: &Path, incarnation: usize) -> Child {
         .stderr(log)
         .spawn()
         .unwrap();
-    let t0 = Instant::now();
-    while ureq::get(&format!("http://127.0.0.1:{port}/healthz")).call().is_err() {
-        assert!(t0.elapsed() < Duration::from_secs(30), "server did not come up");
-        std::thread::sleep(Duration::from_millis(20));
-    }
+    tessera_tests::wait_until_up(&format!("http://127.0.0.1:{port}"));
     c
 }
 
@@ -97,8 +83,8 @@ fn results_cross_an_outage_longer_than_the_lease_and_larger_than_a_request() {
     let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
     let url = format!("http://127.0.0.1:{port}");
     let db = dir.join("tessera.sqlite");
-    let mut procs = Procs(vec![spawn_server(&dir, port, &db, 0)]);
-    let admin = std::fs::read_to_string(dir.join("admin.token")).unwrap().trim().to_string();
+    let mut procs = tessera_tests::Procs(vec![spawn_server(&dir, port, &db, 0)]);
+    let admin = tessera_tests::read_token(&dir.join("admin.token"));
 
     let model = tessera_server::model_check::testing::tiny_model(1, 2, "outage");
     let up: Value = ureq::post(&format!("{url}/api/v1/models"))
