@@ -5,12 +5,13 @@ use std::process::Child;
 use std::time::{Duration, Instant};
 
 /// A binary of the workspace from the target folder the test runs from. The
-/// workspace's test command (`cargo test --workspace`) builds every binary first.
+/// workspace's test command (`tests/run.sh`) builds every binary first; `cargo test`
+/// alone does not build the binaries of crates without tests (the `tessera` command).
 pub fn bin(name: &str) -> PathBuf {
     let exe = std::env::current_exe().expect("test executable path");
     let dir = exe.parent().and_then(|d| d.parent()).expect("target profile folder");
     let p = dir.join(name);
-    assert!(p.exists(), "{} is missing: run the workspace's tests (`cargo test --workspace`) so it gets built", p.display());
+    assert!(p.exists(), "{} is missing: build every binary first (`cargo build --workspace --bins`, as tests/run.sh does)", p.display());
     p
 }
 
