@@ -785,3 +785,73 @@ fn counterexample(
         None => Err("the exact method's candidate counterexample did not pass the sound re-check".into()),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::check::check_cell;
+    use crate::engine::net::Network;
+    use crate::engine::spec::parse_spec;
+    use crate::engine::verdict::VerdictKind;
+    use ndarray::{arr1, arr2};
+
+    fn tank(last: Layer, unsafe_at: f64) -> ClosedLoop {
+        let spec = serde_json::json!({
+            "name": "tank",
+            "states": [{"name": "h"}],
+            "inputs": [{"name": "q"}],
+            "dynamics": {"h": "q - 0.5 * h"},
+            "controller": {
+                "period": 0.5,
+                "observations": [{"name": "level", "expr": "h", "noise": [-0.01, 0.01]}],
+                "networks": ["tank.onnx"],
+                "selection": {"mode": "single"},
+                "decision": "argmax",
+                "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 1.0}}],
+                "initial_command": "off"
+            },
+            "unsafe": [{"all": [format!("h >= {unsafe_at}")]}],
+            "horizon_periods": 4,
+            "envelope": {"h": [0.0, 1.0]},
+            "refinement": {"max_depth": 4, "split": ["h"]},
+            "engine": {"method": "exact"}
+        });
+        let spec = parse_spec(&spec.to_string()).unwrap();
+        // Outputs (off, on) = (h, 1 − h) after the last layer: "on" below half full.
+        let layers = vec![Layer::Dense { w: arr2(&[[1.0], [-1.0]]), b: arr1(&[0.0, 1.0]) }, last];
+        ClosedLoop::new(spec, vec![Network::new(1, layers, false).unwrap()]).unwrap()
+    }
+
+    #[test]
+    fn networks_with_smooth_activations_are_refused_by_name() {
+        let cl = tank(Layer::Tanh, 3.0);
+        let err = prepare(&cl).err().expect("tanh is not piecewise linear");
+        assert!(err.starts_with("controller.networks[0]:"), "{err}");
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Inconclusive);
+        assert!(v.detail.unwrap().contains("does not apply"));
+    }
+
+    #[test]
+    fn the_tank_is_decided_with_and_without_the_solver() {
+        // h' = q − h/2 with q ≤ 1 keeps h ≤ max(h0, 2) < 3 (by hand), whatever the network:
+        // the bounds over all commands prove it.
+        let cl = tank(Layer::Relu, 3.0);
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Safe, "{:?}", v.detail);
+        // h ≥ 1.5: pumping all along from h = 1 would reach 2 − e^{−1} ≈ 1.63 after 2 s,
+        // but the network pumps only below about half full (outputs h and 1 − h, noise
+        // 0.01), and from h ≤ 1 with q = 1 over one period h stays below 1.5 (by hand:
+        // 2 − 1.5·e^{−0.25} ≈ 0.83 from h = 0.5): only the solver proves it.
+        let cl = tank(Layer::Relu, 1.5);
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Safe, "{:?}", v.detail);
+        assert_eq!(v.stats.method.as_deref(), Some("exact"));
+        assert!(v.stats.milp_programs >= 1 && v.detail.unwrap().contains("rests on the solver"));
+        // h ≥ 0.9 holds at the start for part of the cell: a re-checked counterexample.
+        let cl = tank(Layer::Relu, 0.9);
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Unsafe, "{:?}", v.detail);
+        assert_eq!(v.counterexample.unwrap().found_by.as_deref(), Some("exact"));
+    }
+}
