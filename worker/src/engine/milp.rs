@@ -181,6 +181,7 @@ mod tests {
         m.row(vec![(x, 1.0), (y, 2.0)], f64::NEG_INFINITY, 4.0);
         m.row(vec![(x, 3.0), (y, 1.0)], f64::NEG_INFINITY, 6.0);
         m.objective = vec![(x, 1.0), (y, 1.0)];
+        #[allow(unused_mut)]
         let mut backends = vec![Backend::Microlp];
         #[cfg(feature = "highs")]
         backends.push(Backend::Highs);
