@@ -6,9 +6,11 @@
 //! from the cell is a point of a MILP:
 //! * per sample `s` (each control period cut into `m` samples, `m ≥ engine.exact_samples`
 //!   and large enough for the discretisation) a state vector `x_s`, with
-//!   `x_{s+1} = Φ x_s + Γ (B u_k + E w_k + c) + e_s`; `Φ`, `Γ` are interval enclosures
-//!   ([`super::linear::discretise`]), the program uses their midpoints, and the slack
-//!   `e_s` is bounded by the enclosures' radii times sound bounds on `x_s` and the inputs;
+//!   `x_{s+1} = Φ x_s + Γ (B u_k + E w_mid + c) + d_s + e_s`; `Φ`, `Γ` are interval
+//!   enclosures ([`super::linear::discretise`]), the program uses their midpoints, the
+//!   slack `e_s` is bounded by the enclosures' radii times sound bounds on `x_s` and the
+//!   inputs, and `d_s ∈ [−ρ, ρ]` is the effect of the disturbance's deviation from its
+//!   midpoint `w_mid`, which may vary at any time (README, closed-loop semantics);
 //! * per period `k`: the disturbance `w_k` and the observation noise `ν_k` (variables in
 //!   their ranges), the network input `(H x_{km} + h + ν_k − offset) / scale`, every
 //!   network of the bank that may decide, each ReLU with the usual big-M constraints
@@ -23,9 +25,9 @@
 //!   bounds with the motion within the step enclosed), exactly one of them chosen. Each
 //!   inequality `g(x) ≤ 0` of that region must hold at one end of the step (a binary per
 //!   inequality picks which) up to the interpolation error `(h²/8)·max|g''|` of the
-//!   step (`g'' = a·ẍ`, `ẍ = A ẋ` bounded over the step with inputs and disturbance
-//!   held): a trajectory that enters the region anywhere within the step is a point of
-//!   the program too.
+//!   smooth part of the motion (`g'' = a·ÿ`, `ÿ = A ẏ` with the input and `w_mid` held)
+//!   plus `2·Σ|a_j|ρ_j` for the disturbance's deviation: a trajectory that enters the
+//!   region anywhere within the step is a point of the program too.
 //!
 //! **Robustness.** "Safe" rests on the solver's claim that this program is infeasible,
 //! made in floating point. To keep rounding from flipping that claim, the program is a
@@ -35,9 +37,10 @@
 //! the solver says so (`stats.method = "exact"`, and its detail).
 //!
 //! **Counterexamples.** A point of the widened program may be spurious (it may need the
-//! margin). So the point reported comes from a second, tightened program (real noise
-//! and disturbance ranges, decisions won by a margin, the sample maximally deep inside
-//! the region), and it must pass the falsifier's sound re-check
+//! margin, or a disturbance that varies within a period). So the point reported comes
+//! from a second, tightened program (real noise ranges, disturbances held per period as
+//! a counterexample records them, decisions won by a margin, the sample maximally deep
+//! inside the region), and it must pass the falsifier's sound re-check
 //! ([`super::falsify::recheck`]) before "unsafe" is reported. Otherwise: inconclusive.
 //!
 //! Sizes: the program holds one period more than the last one whose samples may meet
@@ -75,9 +78,17 @@ pub struct Prepared {
     gc: Vec<Interval>,
     /// The same for every `τ ∈ [0, h]`, with `Φ(τ) − I`: the motion within a sample step.
     phi_r: IMat,
-    gb_r: IMat,
-    ge_r: IMat,
     gc_r: Vec<Interval>,
+    /// Disturbances vary within a step (any value at any time): `w = w_mid + w̃`. The
+    /// midpoint's effect over a step, `Γ(h) E w_mid` and `Γ(τ) E w_mid` for τ ∈ [0, h]:
+    gw: Vec<Interval>,
+    gw_r: Vec<Interval>,
+    /// and a bound `ρ_i ≥ |∫_0^τ (e^{A(τ−σ)} E w̃(σ))_i dσ|` for every τ ≤ h and every
+    /// `w̃` within the ranges: `h · Σ_l max|(e^{Aσ}E)_il| · rad(w_l)`.
+    rho: Vec<f64>,
+    /// The disturbance midpoints.
+    w_mid: Vec<f64>,
+    gb_r: IMat,
 }
 
 /// Why the exact method does not apply to a loop (one message naming the part).
@@ -105,6 +116,29 @@ pub fn prepare(cl: &ClosedLoop) -> Result<Prepared, String> {
         .map(|i| (0..n).map(|j| phi_full[i][j] - if i == j { Interval::ONE } else { Interval::ZERO }).collect())
         .collect();
     let col = |v: &[Interval]| -> IMat { v.iter().map(|x| vec![*x]).collect() };
+    let w_mid: Vec<f64> = spec.disturbance_ranges.iter().map(|r| r.mid()).collect();
+    let w_rad: Vec<f64> = spec
+        .disturbance_ranges
+        .iter()
+        .zip(&w_mid)
+        .map(|(r, &m)| (Interval::point(r.hi()) - Interval::point(m)).hi().max((Interval::point(m) - Interval::point(r.lo())).hi()))
+        .collect();
+    let ew: Vec<Interval> = lin
+        .plant
+        .e
+        .iter()
+        .map(|row| row.iter().zip(&w_mid).fold(Interval::ZERO, |t, (e, &w)| t + *e * Interval::point(w)))
+        .collect();
+    let pe_r = linear::mat_mul(&phi_full, &lin.plant.e);
+    let rho: Vec<f64> = pe_r
+        .iter()
+        .map(|row| {
+            let sum = row.iter().zip(&w_rad).fold(Interval::ZERO, |t, (pe, &r)| t + Interval::point(pe.mag()) * Interval::point(r));
+            (Interval::point(h.hi()) * sum).hi()
+        })
+        .collect();
+    let gw = linear::mat_mul(&gamma, &col(&ew)).into_iter().map(|r| r[0]).collect();
+    let gw_r = linear::mat_mul(&gamma_r, &col(&ew)).into_iter().map(|r| r[0]).collect();
     let gc = linear::mat_mul(&gamma, &col(&lin.plant.c)).into_iter().map(|r| r[0]).collect();
     let gc_r = linear::mat_mul(&gamma_r, &col(&lin.plant.c)).into_iter().map(|r| r[0]).collect();
     Ok(Prepared {
@@ -112,7 +146,10 @@ pub fn prepare(cl: &ClosedLoop) -> Result<Prepared, String> {
         gb: linear::mat_mul(&gamma, &lin.plant.b),
         ge: linear::mat_mul(&gamma, &lin.plant.e),
         gb_r: linear::mat_mul(&gamma_r, &lin.plant.b),
-        ge_r: linear::mat_mul(&gamma_r, &lin.plant.e),
+        gw,
+        gw_r,
+        rho,
+        w_mid,
         gc,
         gc_r,
         phi,
@@ -223,7 +260,6 @@ fn fresh(iv: Interval, next: &mut usize) -> Affine {
 }
 
 fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize) -> Option<Bounds> {
-    let spec = &cl.spec;
     let n = cell.len();
     let m = p.m as usize;
     let mut next = n;
@@ -234,7 +270,6 @@ fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize
     let bu_hull = hull_over_commands(cl, &p.lin.plant.b);
     let a_mat = &p.lin.plant.a;
     let mut u_forms: Vec<Affine> = Vec::new();
-    let mut w_forms: Vec<Affine> = Vec::new();
     for s in 0..=samples {
         let bx: Vec<Interval> = x.iter().map(|f| f.range()).collect();
         if bx.iter().any(|b| b.is_undefined() || !b.is_bounded()) {
@@ -247,30 +282,29 @@ fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize
         }
         if s % m == 0 {
             u_forms = gbu_hull.iter().map(|iv| fresh(*iv, &mut next)).collect();
-            w_forms = spec.disturbance_ranges.iter().map(|iv| fresh(*iv, &mut next)).collect();
         }
-        // Motion within the step: (Φ(τ) − I) x_s + Γ(τ)(B u + E w + c), τ ∈ [0, h].
+        // Motion within the step: (Φ(τ) − I) x_s + Γ(τ)(B u + E w_mid + c) + [−ρ, ρ],
+        // τ ∈ [0, h].
         let mv: Vec<Interval> = (0..n)
             .map(|i| {
-                let mut t = gbu_hull_r[i] + p.gc_r[i];
+                let mut t = gbu_hull_r[i] + p.gc_r[i] + p.gw_r[i] + Interval::new(-p.rho[i], p.rho[i]);
                 for j in 0..n {
                     t = t + p.phi_r[i][j] * bx[j];
-                }
-                for (l, w) in spec.disturbance_ranges.iter().enumerate() {
-                    t = t + p.ge_r[i][l] * *w;
                 }
                 t
             })
             .collect();
-        // ẋ = A x + B u + E w + c over the step's box, then ẍ = A ẋ.
+        // The part of the motion driven by the disturbance midpoint, y = x − z with
+        // |z| ≤ ρ, is smooth within the step: ẏ = A y + B u + E w_mid + c over the
+        // step's box widened by ρ, then ÿ = A ẏ.
         let xdot: Vec<Interval> = (0..n)
             .map(|i| {
                 let mut t = bu_hull[i] + p.lin.plant.c[i];
                 for j in 0..n {
-                    t = t + a_mat[i][j] * (bx[j] + mv[j]);
+                    t = t + a_mat[i][j] * (bx[j] + mv[j] + Interval::new(-p.rho[j], p.rho[j]));
                 }
-                for (l, w) in spec.disturbance_ranges.iter().enumerate() {
-                    t = t + p.lin.plant.e[i][l] * *w;
+                for (l, &w) in p.w_mid.iter().enumerate() {
+                    t = t + p.lin.plant.e[i][l] * Interval::point(w);
                 }
                 t
             })
@@ -279,14 +313,12 @@ fn reach_bounds(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], samples: usize
         motion.push(mv);
         x = (0..n)
             .map(|i| {
-                let mut f = u_forms[i].add_interval(p.gc[i]);
+                let mut f = u_forms[i].add_interval(p.gc[i] + p.gw[i]);
                 for j in 0..n {
                     f = f.add(&x[j].mul_interval(p.phi[i][j]));
                 }
-                for (l, w) in w_forms.iter().enumerate() {
-                    f = f.add(&w.mul_interval(p.ge[i][l]));
-                }
-                f
+                // The disturbance's deviation from its midpoint over this step.
+                f.add(&fresh(Interval::new(-p.rho[i], p.rho[i]), &mut next))
             })
             .collect();
     }
@@ -503,12 +535,22 @@ fn encode(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], c0: usize, b: &Bound
                 }
             }
             slack = slack + cmd_slack;
-            for (l, &wv) in dist[k].iter().enumerate() {
-                let f = p.ge[i][l];
-                lin.terms.push((wv, f.mid()));
-                slack = slack + (f - Interval::point(f.mid())) * spec.disturbance_ranges[l];
-            }
-            let gc = p.gc[i];
+            // Widened: the disturbance varies within the step (its midpoint's effect, plus
+            // a deviation variable in [−ρ, ρ]). Tightened: held per period (a special
+            // case, and what a counterexample records).
+            let gc = if widened {
+                let dv = widen(Interval::new(-p.rho[i], p.rho[i]));
+                let d = model.var(dv.lo(), dv.hi());
+                lin.terms.push((d, 1.0));
+                p.gc[i] + p.gw[i]
+            } else {
+                for (l, &wv) in dist[k].iter().enumerate() {
+                    let f = p.ge[i][l];
+                    lin.terms.push((wv, f.mid()));
+                    slack = slack + (f - Interval::point(f.mid())) * spec.disturbance_ranges[l];
+                }
+                p.gc[i]
+            };
             let c_total = Interval::point(lin.c) + gc;
             lin.c = c_total.mid();
             slack = slack + (c_total - Interval::point(c_total.mid()));
@@ -554,6 +596,10 @@ fn encode(cl: &ClosedLoop, p: &Prepared, cell: &[Interval], c0: usize, b: &Bound
                     curv = curv + g.coeffs[j] * b.accel[s][j];
                 }
                 rhs = rhs + Interval::point(h) * Interval::point(h) / Interval::point(8.0) * Interval::point(curv.mag());
+                // The disturbance's deviation, at τ and at the step's end: 2·Σ|a_j|·ρ_j.
+                for j in 0..n {
+                    rhs = rhs + Interval::point(2.0) * Interval::point(g.coeffs[j].mag()) * Interval::point(p.rho[j]);
+                }
                 let rhs = (rhs + Interval::point(margin_of(rhs.mag()))).hi();
                 // One binary picks the end: a·x_s ≤ rhs + M(1 − z) + M e, and
                 // a·x_{s+1} ≤ rhs + M(1 − z) + M(1 − e).
@@ -783,5 +829,75 @@ fn counterexample(
             Ok(Counterexample { found_by: Some("exact".into()), ..falsify::to_counterexample(cl, &cand, region, during) })
         }
         None => Err("the exact method's candidate counterexample did not pass the sound re-check".into()),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::check::check_cell;
+    use crate::net::Network;
+    use crate::spec::parse_spec;
+    use crate::verdict::VerdictKind;
+    use ndarray::{arr1, arr2};
+
+    fn tank(last: Layer, unsafe_at: f64) -> ClosedLoop {
+        let spec = serde_json::json!({
+            "name": "tank",
+            "states": [{"name": "h"}],
+            "inputs": [{"name": "q"}],
+            "dynamics": {"h": "q - 0.5 * h"},
+            "controller": {
+                "period": 0.5,
+                "observations": [{"name": "level", "expr": "h", "noise": [-0.01, 0.01]}],
+                "networks": ["tank.onnx"],
+                "selection": {"mode": "single"},
+                "decision": "argmax",
+                "commands": [{"name": "off", "set": {"q": 0.0}}, {"name": "on", "set": {"q": 1.0}}],
+                "initial_command": "off"
+            },
+            "unsafe": [{"all": [format!("h >= {unsafe_at}")]}],
+            "horizon_periods": 4,
+            "envelope": {"h": [0.0, 1.0]},
+            "refinement": {"max_depth": 4, "split": ["h"]},
+            "engine": {"method": "exact"}
+        });
+        let spec = parse_spec(&spec.to_string()).unwrap();
+        // Outputs (off, on) = (h, 1 − h) after the last layer: "on" below half full.
+        let layers = vec![Layer::Dense { w: arr2(&[[1.0], [-1.0]]), b: arr1(&[0.0, 1.0]) }, last];
+        ClosedLoop::new(spec, vec![Network::new(1, layers, false).unwrap()]).unwrap()
+    }
+
+    #[test]
+    fn networks_with_smooth_activations_are_refused_by_name() {
+        let cl = tank(Layer::Tanh, 3.0);
+        let err = prepare(&cl).err().expect("tanh is not piecewise linear");
+        assert!(err.starts_with("controller.networks[0]:"), "{err}");
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Inconclusive);
+        assert!(v.detail.unwrap().contains("does not apply"));
+    }
+
+    #[test]
+    fn the_tank_is_decided_with_and_without_the_solver() {
+        // h' = q − h/2 with q ≤ 1 keeps h ≤ max(h0, 2) < 3 (by hand), whatever the network:
+        // the bounds over all commands prove it.
+        let cl = tank(Layer::Relu, 3.0);
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Safe, "{:?}", v.detail);
+        // h ≥ 1.5: pumping all along from h = 1 would reach 2 − e^{−1} ≈ 1.63 after 2 s,
+        // but the network pumps only below about half full (outputs h and 1 − h, noise
+        // 0.01), and from h ≤ 1 with q = 1 over one period h stays below 1.5 (by hand:
+        // 2 − 1.5·e^{−0.25} ≈ 0.83 from h = 0.5): only the solver proves it.
+        let cl = tank(Layer::Relu, 1.5);
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Safe, "{:?}", v.detail);
+        assert_eq!(v.stats.method.as_deref(), Some("exact"));
+        assert!(v.stats.milp_programs >= 1 && v.detail.unwrap().contains("rests on the solver"));
+        // h ≥ 0.9 holds at the start for part of the cell: a re-checked counterexample.
+        let cl = tank(Layer::Relu, 0.9);
+        let v = check_cell(&cl, &cl.envelope());
+        assert_eq!(v.verdict, VerdictKind::Unsafe, "{:?}", v.detail);
+        assert_eq!(v.counterexample.unwrap().found_by.as_deref(), Some("exact"));
     }
 }

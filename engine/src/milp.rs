@@ -181,14 +181,21 @@ mod tests {
         m.row(vec![(x, 1.0), (y, 2.0)], f64::NEG_INFINITY, 4.0);
         m.row(vec![(x, 3.0), (y, 1.0)], f64::NEG_INFINITY, 6.0);
         m.objective = vec![(x, 1.0), (y, 1.0)];
-        match m.solve(Duration::from_secs(5)) {
-            Answer::Point(p) => {
-                assert!((p[x] - 5.0 / 3.0).abs() < 1e-6 && (p[y] - 1.0).abs() < 1e-6, "{p:?}")
+        #[allow(unused_mut)]
+        let mut backends = vec![Backend::Microlp];
+        #[cfg(feature = "highs")]
+        backends.push(Backend::Highs);
+        for b in backends {
+            match m.solve_with(b, Duration::from_secs(5)) {
+                Answer::Point(p) => {
+                    assert!((p[x] - 5.0 / 3.0).abs() < 1e-6 && (p[y] - 1.0).abs() < 1e-6, "{}: {p:?}", b.name())
+                }
+                a => panic!("{}: {a:?}", b.name()),
             }
-            a => panic!("{a:?}"),
+            // x + y ≥ 2.7: the LP relaxation reaches 2.8 (x = 1.6, y = 1.2), integers only 5/3 + 1.
+            let mut m2 = m.clone();
+            m2.row(vec![(x, 1.0), (y, 1.0)], 2.7, f64::INFINITY);
+            assert_eq!(m2.solve_with(b, Duration::from_secs(5)), Answer::Infeasible, "{}", b.name());
         }
-        // x + y ≥ 2.7: the LP relaxation reaches 2.8 (x = 1.6, y = 1.2), integers only 5/3 + 1.
-        m.row(vec![(x, 1.0), (y, 1.0)], 2.7, f64::INFINITY);
-        assert_eq!(m.solve(Duration::from_secs(5)), Answer::Infeasible);
     }
 }

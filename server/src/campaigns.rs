@@ -442,6 +442,26 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
     .await?;
     let engines: Vec<String> = engines.into_iter().map(|e| e.unwrap_or_else(|| "unreported".into())).collect();
     let cex = counterexamples(store, id, 100, 0).await?;
+    // Safe cells whose verdict rests on a MILP solver (the worker's exact method,
+    // `stats.method = "exact"`) rather than on outward-rounded set arithmetic.
+    let max_depth = cov.max_depth;
+    let on_solver: Vec<(i64, i64)> = sqlx::query_as(
+        "SELECT c.depth, COUNT(*) FROM cells c JOIN results r ON r.id = c.result_id
+         WHERE c.campaign_id = ? AND c.status = 'safe'
+           AND json_extract(r.verdict_json, '$.stats.method') = 'exact'
+         GROUP BY c.depth",
+    )
+    .bind(id)
+    .fetch_all(&store.pool)
+    .await?;
+    let (solver_cells, solver_volume) = on_solver
+        .iter()
+        .fold((0i64, 0i64), |(c, v), &(depth, n)| (c + n, v + n * refine::volume(max_depth, depth as u32)));
+    let safe_on_solver = json!({
+        "cells": solver_cells,
+        "fraction": solver_volume as f64 / refine::volume(max_depth, 0) as f64,
+        "reduced": refine::reduced_fraction(solver_volume, max_depth),
+    });
     // A follow-up's report says what changed since the campaign it follows up.
     let changes = match campaign["follow_up_of"].as_str() {
         Some(_) => {
@@ -472,6 +492,7 @@ pub async fn report(store: &Store, id: &str) -> ApiResult<Value> {
         "envelope": doc["envelope"],
         "split": doc["refinement"]["split"],
         "coverage": serde_json::to_value(&cov).map_err(ApiError::internal)?,
+        "safe_on_solver": safe_on_solver,
         "counterexamples": cex["counterexamples"],
         "changes": changes,
     }))
@@ -551,6 +572,15 @@ pub fn report_markdown(r: &Value) -> String {
     );
     let _ = writeln!(s, "A fraction counts a cell at depth d as 2^-d of the envelope: cells are halves of halves.");
     let _ = writeln!(s, "Proven safe is a lower bound on the safe volume; {COUNTEREXAMPLE_NOTE}.\n");
+    let sol = &r["safe_on_solver"];
+    if sol["cells"].as_i64().unwrap_or(0) > 0 {
+        let _ = writeln!(
+            s,
+            "Of the proven safe volume, {} ({} cells) rests on a MILP solver's floating-point infeasibility claim (the exact method), not on outward-rounded set arithmetic.\n",
+            sol["reduced"].as_str().unwrap_or("?"),
+            sol["cells"]
+        );
+    }
     let ch = &r["changes"];
     if ch.is_object() {
         let _ = writeln!(s, "## Changes since campaign `{}`\n", ch["against"].as_str().unwrap_or(""));

@@ -143,11 +143,19 @@ async fn scripted_campaign_ends_with_exact_fractions() {
     assert!(rep["caution"].as_str().unwrap().contains("float32"));
     assert_eq!(rep["coverage"]["statuses"]["safe"]["reduced"], "7/16");
     assert_eq!(rep["coverage"]["statuses"]["counterexample"]["reduced"], "1/16");
+    // Safe cells resting on a solver, recounted from the cells' own results.
+    let r = ts.client.get(&format!("/api/v1/campaigns/{id}/cells?status=safe&limit=1000"), ts.token(Role::Viewer)).await;
+    let safe_cells = r.json()["cells"].as_array().unwrap().clone();
+    let on_solver: Vec<&Value> = safe_cells.iter().filter(|c| c["result"]["stats"]["method"] == "exact").collect();
+    let recount: f64 = on_solver.iter().map(|c| 0.5f64.powi(c["depth"].as_i64().unwrap() as i32)).sum();
+    assert!(!on_solver.is_empty() && on_solver.len() < safe_cells.len(), "{}", r.text());
+    assert_eq!(rep["safe_on_solver"]["cells"], on_solver.len());
+    assert_eq!(rep["safe_on_solver"]["fraction"].as_f64().unwrap(), recount, "{}", rep["safe_on_solver"]);
     let r = ts.client.get(&format!("/api/v1/campaigns/{id}/report.md"), ts.token(Role::Viewer)).await;
     assert!(r.content_type.starts_with("text/markdown"));
     let md = r.text();
     let caution = tessera_engine::caution::CAUTION;
-    for needle in [caution, c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1", "| counterexample | 1 |", "upper bound"] {
+    for needle in [caution, c["spec_hash"].as_str().unwrap(), &model, "7/16", "scripted-1", "| counterexample | 1 |", "upper bound", "rests on a MILP solver"] {
         assert!(md.contains(needle), "report.md lacks {needle}:\n{md}");
     }
     assert!(!md.contains("| unsafe |"), "{md}");

@@ -139,12 +139,15 @@ pub async fn create_campaign(ts: &TestServer, spec: &Value, query: &str) -> Stri
     r.json()["id"].as_str().unwrap().to_string()
 }
 
-/// The scripted verdict: safe if h's upper end < 0.5, unsafe if its lower end > 0.9,
-/// else inconclusive with hint h.
+/// The scripted verdict: safe if h's upper end < 0.5 (said to rest on the exact
+/// method's MILP solver, `stats.method = "exact"`, when it is at most 0.25), unsafe if
+/// its lower end > 0.9, else inconclusive with hint h.
 pub fn scripted(cell: &Value) -> Value {
     let h = &cell["box"]["h"];
     let (lo, hi) = (h[0].as_f64().unwrap(), h[1].as_f64().unwrap());
-    if hi < 0.5 {
+    if hi <= 0.25 {
+        json!({"verdict": "safe", "reason": "scripted", "split_hint": null, "counterexample": null, "stats": {"method": "exact"}})
+    } else if hi < 0.5 {
         json!({"verdict": "safe", "reason": "scripted", "split_hint": null, "counterexample": null, "stats": {}})
     } else if lo > 0.9 {
         json!({"verdict": "unsafe", "reason": "scripted", "split_hint": null,
