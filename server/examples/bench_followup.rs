@@ -24,6 +24,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 use tessera_server::auth::Role;
 use tessera_server::campaigns::{self, CreateOptions};
+use tessera_server::views;
 use tessera_server::{Config, Store};
 use tessera_worker::client::run::{run, RunOptions};
 
@@ -123,7 +124,7 @@ async fn run_campaign(
     let worker = std::thread::spawn(move || run(opts, Arc::new(AtomicBool::new(false))));
     let mut points = Vec::new();
     loop {
-        let cov = campaigns::coverage(store, &id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        let cov = views::coverage(store, &id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         let safe = cov.fraction(tessera_protocol::CellStatus::Safe);
         points.push((t0.elapsed().as_secs_f64(), safe, cov.results));
         if cov.state != tessera_protocol::CampaignState::Running {

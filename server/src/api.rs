@@ -3,6 +3,7 @@
 
 use crate::auth::{Access, Role};
 use crate::campaigns::{self, CreateOptions};
+use crate::{report, tiling, views};
 use crate::config::{Config, MAX_JSON_BYTES, MAX_MODEL_BYTES};
 use crate::dashboard;
 use crate::error::{ApiError, ApiResult};
@@ -375,7 +376,7 @@ async fn cancel(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> 
 }
 
 async fn coverage(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Coverage>> {
-    Ok(Json(campaigns::coverage(&st.store, &id).await?))
+    Ok(Json(views::coverage(&st.store, &id).await?))
 }
 
 #[derive(Deserialize)]
@@ -396,7 +397,7 @@ fn page_limit(l: Option<i64>) -> ApiResult<i64> {
 
 async fn list_cells(State(st): State<AppState>, P(id): P, Q(q): Q<CellsQuery>) -> ApiResult<Json<Value>> {
     let limit = page_limit(q.limit)?;
-    Ok(Json(campaigns::cells(&st.store, &id, q.status.as_deref(), q.depth, limit, q.after.unwrap_or(0)).await?))
+    Ok(Json(views::cells(&st.store, &id, q.status.as_deref(), q.depth, limit, q.after.unwrap_or(0)).await?))
 }
 
 #[derive(Deserialize)]
@@ -408,7 +409,7 @@ struct PageQuery {
 
 async fn counterexamples(State(st): State<AppState>, P(id): P, Q(q): Q<PageQuery>) -> ApiResult<Json<Value>> {
     let limit = page_limit(q.limit)?;
-    Ok(Json(campaigns::counterexamples(&st.store, &id, limit, q.after.unwrap_or(0)).await?))
+    Ok(Json(views::counterexamples(&st.store, &id, limit, q.after.unwrap_or(0)).await?))
 }
 
 #[derive(Deserialize)]
@@ -421,10 +422,10 @@ struct LeavesQuery {
 
 async fn leaves(State(st): State<AppState>, P(id): P, Q(q): Q<LeavesQuery>) -> ApiResult<Json<Value>> {
     let limit = match q.limit.unwrap_or(10_000) {
-        v @ 1..=campaigns::MAX_LEAVES_PAGE => v,
-        _ => return Err(ApiError::bad_request(format!("limit must be between 1 and {}", campaigns::MAX_LEAVES_PAGE)).field("limit")),
+        v @ 1..=views::MAX_LEAVES_PAGE => v,
+        _ => return Err(ApiError::bad_request(format!("limit must be between 1 and {}", views::MAX_LEAVES_PAGE)).field("limit")),
     };
-    Ok(Json(campaigns::leaves(&st.store, &id, q.since_ms, q.after.unwrap_or(0), limit).await?))
+    Ok(Json(views::leaves(&st.store, &id, q.since_ms, q.after.unwrap_or(0), limit).await?))
 }
 
 #[derive(Deserialize)]
@@ -438,7 +439,7 @@ async fn recent_results(State(st): State<AppState>, P(id): P, Q(q): Q<RecentQuer
         v @ 1..=1000 => v,
         _ => return Err(ApiError::bad_request("limit must be between 1 and 1000").field("limit")),
     };
-    Ok(Json(campaigns::recent_results(&st.store, &id, limit).await?))
+    Ok(Json(views::recent_results(&st.store, &id, limit).await?))
 }
 
 #[derive(Deserialize)]
@@ -449,10 +450,10 @@ struct HistoryQuery {
 
 async fn history(State(st): State<AppState>, P(id): P, Q(q): Q<HistoryQuery>) -> ApiResult<Json<Value>> {
     let points = match q.points.unwrap_or(100) {
-        v @ 1..=campaigns::MAX_HISTORY_POINTS => v,
-        _ => return Err(ApiError::bad_request(format!("points must be between 1 and {}", campaigns::MAX_HISTORY_POINTS)).field("points")),
+        v @ 1..=views::MAX_HISTORY_POINTS => v,
+        _ => return Err(ApiError::bad_request(format!("points must be between 1 and {}", views::MAX_HISTORY_POINTS)).field("points")),
     };
-    Ok(Json(campaigns::history(&st.store, &id, points).await?))
+    Ok(Json(views::history(&st.store, &id, points).await?))
 }
 
 #[derive(Deserialize)]
@@ -477,12 +478,12 @@ async fn whoami(axum::Extension(caller): axum::Extension<Caller>) -> ApiResult<J
 }
 
 async fn report_json(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> {
-    Ok(Json(campaigns::report(&st.store, &id).await?))
+    Ok(Json(report::report(&st.store, &id).await?))
 }
 
 async fn report_md(State(st): State<AppState>, P(id): P) -> ApiResult<Response> {
-    let r = campaigns::report(&st.store, &id).await?;
-    Ok(([(header::CONTENT_TYPE, "text/markdown; charset=utf-8")], campaigns::report_markdown(&r)).into_response())
+    let r = report::report(&st.store, &id).await?;
+    Ok(([(header::CONTENT_TYPE, "text/markdown; charset=utf-8")], report::report_markdown(&r)).into_response())
 }
 
 fn worker_name(w: &Option<String>, field: &str) -> ApiResult<String> {
@@ -557,5 +558,5 @@ async fn create_token(State(st): State<AppState>, JsonBody(req): JsonBody<TokenR
 }
 
 async fn tiling(State(st): State<AppState>, P(id): P) -> ApiResult<Json<Value>> {
-    Ok(Json(campaigns::tiling_check(&st.store, &id).await?))
+    Ok(Json(tiling::tiling_check(&st.store, &id).await?))
 }

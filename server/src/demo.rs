@@ -6,6 +6,7 @@
 
 use crate::auth::Role;
 use crate::campaigns::{self, CreateOptions};
+use crate::views;
 use crate::config::Config;
 use serde_json::Value;
 use std::path::{Path, PathBuf};
@@ -166,7 +167,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
         let mut all_done = true;
         let mut line = format!("{:>6.0}s", started.elapsed().as_secs_f64());
         for (name, id) in &ids {
-            let cov = campaigns::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+            let cov = views::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
             all_done &= !cov.state.is_open();
             line.push_str(&format!(
                 "  {name}: safe {:.1}% counterexample {:.1}% unresolved {:.1}% open {:.1}%",
@@ -198,7 +199,7 @@ pub async fn run(opts: DemoOptions) -> anyhow::Result<()> {
     println!("{:<10} {:>9} {:>15} {:>11} {:>8} {:>7}", "campaign", "safe", "counterexample", "unresolved", "failed", "cells");
     let mut finals = Vec::new();
     for (name, id) in &ids {
-        let cov = campaigns::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        let cov = views::coverage(&store, id).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         println!(
             "{:<10} {:>8.2}% {:>14.2}% {:>10.2}% {:>7.2}% {:>7}",
             name,

@@ -18,8 +18,11 @@ pub mod metrics;
 pub mod model_check;
 pub mod openapi;
 pub mod refine;
+pub mod report;
 pub mod seed;
 pub mod store;
+pub mod tiling;
+pub mod views;
 
 pub use api::{router, routes, AppState};
 pub use config::Config;
