@@ -210,8 +210,9 @@ impl ClosedLoop {
     /// `noise_base + j` (observation j), which no component uses: they are existentially
     /// quantified, jointly for all constraints of the command, and the caller must keep
     /// them apart from every other symbol. Commands whose constraints provably leave the
-    /// star empty are dropped.
-    pub fn decide_on_star(&self, prev: usize, star: &Star, method: BoundsMethod, noise_base: usize) -> StarDecision {
+    /// star empty are dropped. `slope_steps` optimisation steps of the ReLU lower
+    /// slopes per open score difference (0: the fixed rule) tighten the constraints.
+    pub fn decide_on_star(&self, prev: usize, star: &Star, method: BoundsMethod, noise_base: usize, slope_steps: u32) -> StarDecision {
         let spec = &self.spec;
         let obs: Vec<Affine> = spec.observations.iter().map(|o| star.set.eval_affine(&o.expr)).collect();
         let all = |cands: Vec<usize>| StarDecision { parts: cands.into_iter().map(|c| (c, star.clone())).collect(), sensitivity: Vec::new() };
@@ -269,7 +270,7 @@ impl ClosedLoop {
             obj[[r, p]] = 1.0;
             obj[[r, q]] = -1.0;
         }
-        let Some((lam, d)) = net::bounds::linear_lower_bounds(&composite, &unit, obj) else {
+        let Some((lam, d)) = net::bounds::linear_lower_bounds_tuned(&composite, &unit, obj, slope_steps, net::slopes::Target::Mean) else {
             return all(cands);
         };
         let n_sym = syms.len();

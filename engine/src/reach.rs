@@ -420,12 +420,12 @@ fn decide(cl: &ClosedLoop, opts: &EngineOptions, br: &Branch, noise_base: usize,
 fn decide_sliced(cl: &ClosedLoop, opts: &EngineOptions, br: &Branch, methods: &[BoundsMethod], noise_base: usize, next_symbol: &mut usize) -> Vec<(usize, Star)> {
     let budget = opts.decision_pieces.max(1) as usize;
     let decide_one = |star: &Star| {
-        let mut d = cl.decide_on_star(br.prev, star, methods[0], noise_base);
+        let mut d = cl.decide_on_star(br.prev, star, methods[0], noise_base, opts.slope_steps);
         for m in &methods[1..] {
             if d.parts.len() <= 1 {
                 break;
             }
-            d = cl.decide_on_star(br.prev, star, *m, noise_base);
+            d = cl.decide_on_star(br.prev, star, *m, noise_base, opts.slope_steps);
         }
         d
     };

@@ -55,6 +55,7 @@
 //! Upper bounds are `−(lower bound of −objective)`. Any NaN met in a bound becomes an
 //! infinite (vacuous) bound, never a finite one.
 
+use super::slopes::{Slopes, Target};
 use super::{Layer, Network};
 use crate::interval::Interval;
 use crate::spec::BoundsMethod;
@@ -309,7 +310,7 @@ fn add_down(a: f64, b: f64) -> f64 {
 /// `vals[k]` must enclose `v[k]` (the ReLU inputs with their tightened bounds).
 fn backward(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>, over: Option<Concretiser>) -> Vec<f64> {
     let rows = obj.nrows();
-    let Some((lam, d, stop)) = backward_linear(net, vals, top, obj) else {
+    let Some((lam, d, stop)) = backward_linear(net, vals, top, obj, None) else {
         return vec![f64::NEG_INFINITY; rows];
     };
     let on_box = concretise(&lam, &d, &vals[stop]);
@@ -328,7 +329,13 @@ pub type Concretiser<'a> = &'a dyn Fn(&Array2<f64>, &[f64]) -> Vec<f64>;
 /// `obj_r·v[top] ≥ lam_r·v[stop] + d_r` for every input in the box, where `stop` is 0
 /// (the input) unless a sigmoid/tanh layer ended the pass. `None` when a bound met on
 /// the way is undefined or unbounded.
-fn backward_linear(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array2<f64>) -> Option<(Array2<f64>, Vec<f64>, usize)> {
+fn backward_linear(
+    net: &Network,
+    vals: &[Vec<Interval>],
+    top: usize,
+    obj: Array2<f64>,
+    slopes: Option<&Slopes>,
+) -> Option<(Array2<f64>, Vec<f64>, usize)> {
     let rows = obj.nrows();
     let mut lam = obj;
     let mut d = vec![0.0f64; rows];
@@ -382,8 +389,11 @@ fn backward_linear(net: &Network, vals: &[Vec<Interval>], top: usize, obj: Array
                             // relu(z) = z exactly: λ' = λ, offset 0
                         } else {
                             let mut lp = if l > 0.0 {
-                                // lower relaxation relu(z) ≥ α·z, α by the adaptive rule
-                                if hi >= -lo {
+                                // lower relaxation relu(z) ≥ α·z, α chosen by the
+                                // optimiser when given, else by the adaptive rule
+                                if let Some(s) = slopes {
+                                    l * s.get(r, k, i)
+                                } else if hi >= -lo {
                                     l
                                 } else {
                                     0.0
@@ -525,7 +535,30 @@ pub fn linear_lower_bounds(net: &Network, input: &[Interval], obj: Array2<f64>) 
         return None;
     }
     let vals = tightened_values(net, input);
-    let (lam, d, stop) = backward_linear(net, &vals, net.layers().len(), obj)?;
+    let (lam, d, stop) = backward_linear(net, &vals, net.layers().len(), obj, None)?;
+    if stop != 0 || d.iter().any(|v| !v.is_finite()) {
+        return None;
+    }
+    Some((lam, d))
+}
+
+/// [`linear_lower_bounds`] with the ReLU lower slopes optimised per row by `steps`
+/// projected-gradient steps on the row's `target` over the box ([`super::slopes`]);
+/// the same guarantee (the slopes are only proposals, the rigorous pass checks
+/// nothing less for them). With `steps == 0` it is [`linear_lower_bounds`].
+pub fn linear_lower_bounds_tuned(net: &Network, input: &[Interval], obj: Array2<f64>, steps: u32, target: Target) -> Option<(Array2<f64>, Vec<f64>)> {
+    if steps == 0 {
+        return linear_lower_bounds(net, input, obj);
+    }
+    assert_eq!(input.len(), net.input_dim(), "network takes {} inputs, got {}", net.input_dim(), input.len());
+    assert_eq!(obj.ncols(), net.output_dim(), "objective over {} outputs, network has {}", obj.ncols(), net.output_dim());
+    if input.iter().any(|i| i.is_undefined() || !i.is_bounded()) {
+        return None;
+    }
+    let vals = tightened_values(net, input);
+    let top = net.layers().len();
+    let slopes = super::slopes::optimise(net, &vals, top, &obj, steps, target);
+    let (lam, d, stop) = backward_linear(net, &vals, top, obj, slopes.as_ref())?;
     if stop != 0 || d.iter().any(|v| !v.is_finite()) {
         return None;
     }

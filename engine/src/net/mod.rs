@@ -14,6 +14,7 @@
 pub mod bounds;
 pub mod onnx;
 pub mod proto;
+pub mod slopes;
 
 pub use bounds::{output_bounds, OutputBounds};
 pub use onnx::{load_onnx, NetError};

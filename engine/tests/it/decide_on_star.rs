@@ -199,14 +199,17 @@ fn decisions_on_stars_hold_the_controllers_choices() {
                 .collect();
             let star = Star { set: StateSet::from_box(&cell), cons: cell_constraints(&mut rng, n) };
             let prev0 = spec.initial_commands[0];
-            for method in [BoundsMethod::Interval, BoundsMethod::Symbolic, BoundsMethod::Portfolio] {
-                let label = format!("system {sys} cell {cell_no} {method:?}");
+            // The fixed ReLU slopes, and slopes optimised by 12 steps (`engine.slope_steps`).
+            for (method, slope_steps) in
+                [(BoundsMethod::Interval, 0), (BoundsMethod::Symbolic, 0), (BoundsMethod::Portfolio, 0), (BoundsMethod::Symbolic, 12)]
+            {
+                let label = format!("system {sys} cell {cell_no} {method:?} slope steps {slope_steps}");
                 // Period 1: noise symbols n..n+n_obs; period 2: n+n_obs..n+2·n_obs.
-                let d1 = cl.decide_on_star(prev0, &star, method, n);
+                let d1 = cl.decide_on_star(prev0, &star, method, n, slope_steps);
                 let points = draw(&mut rng, cl, &star, n, 400);
                 let mut level2 = Vec::new();
                 for (c1, part1) in &d1.parts {
-                    let d2 = cl.decide_on_star(*c1, part1, method, n + n_obs);
+                    let d2 = cl.decide_on_star(*c1, part1, method, n + n_obs, slope_steps);
                     let points2 = draw(&mut rng, cl, part1, n + n_obs, 200);
                     level2.push((format!("{label}, after {c1}"), *c1, d2.parts, points2));
                 }
