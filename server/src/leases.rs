@@ -90,7 +90,7 @@ pub async fn lease(
             let depth: i64 = r.try_get(2)?;
             let b: Vec<u8> = r.try_get(3)?;
             let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
-            let lease_id = uuid::Uuid::new_v4().to_string();
+            let lease_id = crate::store::new_id();
             deltas.moved(&cid, CellStatus::Pending, CellStatus::Leased, refine::volume(info.max_depth, depth as u32));
             out.push(LeasedCell {
                 cell_id: id,
@@ -535,7 +535,7 @@ pub async fn submit(
         }
         let info = &infos[&h.campaign_id];
         let vol = refine::volume(info.max_depth, h.depth);
-        let result_id = uuid::Uuid::new_v4().to_string();
+        let result_id = crate::store::new_id();
         let mut attempts = h.attempts;
         let mut error = None;
         let mut split_dim = None;
@@ -679,7 +679,7 @@ pub async fn insert_cells(
         );
         let mut q = sqlx::query(&sql);
         for (cid, parent, depth, b) in chunk {
-            let id = uuid::Uuid::new_v4().to_string();
+            let id = crate::store::new_id();
             let parent = if parent.is_empty() { None } else { Some(parent.clone()) };
             q = q
                 .bind(id.clone())

@@ -25,6 +25,15 @@ pub fn cell_status(stored: &str) -> ApiResult<CellStatus> {
     CellStatus::parse(stored).ok_or_else(|| ApiError::internal(format!("unknown stored cell status '{stored}'")))
 }
 
+/// A new id for a campaign, cell, lease or result: a UUIDv7, whose leading 48 bits are
+/// the time in milliseconds (and whose next bits keep ids minted by this process in
+/// order within a millisecond). Rows inserted together therefore land side by side at
+/// the right-hand end of every index on an id, instead of on random pages as random
+/// (v4) ids did. Secrets (token values, `auth::new_token`) stay random.
+pub fn new_id() -> String {
+    uuid::Uuid::now_v7().to_string()
+}
+
 /// Milliseconds since the Unix epoch.
 pub fn now_ms() -> i64 {
     std::time::SystemTime::now()
@@ -111,11 +120,15 @@ impl Store {
             .filename(path)
             .create_if_missing(true)
             .journal_mode(SqliteJournalMode::Wal)
-            .synchronous(SqliteSynchronous::Normal)
+            // FULL: every COMMIT syncs the write-ahead log before it returns, so a
+            // lease or result acknowledged to a client survives a power loss or a
+            // kernel crash too (NORMAL kept it only across a crash of this process).
+            .synchronous(SqliteSynchronous::Full)
             .foreign_keys(true)
             .busy_timeout(Duration::from_secs(10))
             .statement_cache_capacity(400)
-            // Random UUID keys touch pages all over the indexes: keep them in memory.
+            // A large page cache: the queue and lease indexes are read and written by
+            // every batch.
             .pragma("cache_size", "-65536")
             .pragma("temp_store", "memory");
         let pool = SqlitePoolOptions::new().max_connections(8).connect_with(opts.clone()).await?;
