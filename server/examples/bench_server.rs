@@ -24,6 +24,7 @@ use std::time::{Duration, Instant};
 use tessera_server::auth::Role;
 use tessera_protocol::ResultItem;
 use tessera_server::leases;
+use tessera_server::writer::Writer;
 use tessera_server::Config;
 
 /// The three verdict texts, made once.
@@ -236,7 +237,7 @@ async fn raw_run(seconds: u64, batch: u32, verdicts: &Verdicts) -> anyhow::Resul
     let (mut t_lease, mut t_submit) = (0.0, 0.0);
     while t0.elapsed() < Duration::from_secs(seconds) {
         let t = Instant::now();
-        let (cells, _) = leases::lease(&store, limits, batch, "raw", None).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        let (cells, _) = Writer::lease_alone(&store, limits, batch, "raw").await.map_err(|e| anyhow::anyhow!(e.detail))?;
         t_lease += t.elapsed().as_secs_f64();
         let t = Instant::now();
         let items: Vec<ResultItem> = cells
@@ -249,7 +250,7 @@ async fn raw_run(seconds: u64, batch: u32, verdicts: &Verdicts) -> anyhow::Resul
             })
             .collect();
         let (_, stats) =
-            leases::submit(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+            Writer::submit_alone(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         n += stats.accepted;
         t_submit += t.elapsed().as_secs_f64();
     }

@@ -20,6 +20,7 @@ pub mod openapi;
 pub mod refine;
 pub mod seed;
 pub mod store;
+pub mod writer;
 
 pub use api::{router, routes, AppState};
 pub use config::Config;

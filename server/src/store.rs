@@ -3,7 +3,9 @@
 //!
 //! Writes are serialised by one async mutex (SQLite has one writer anyway; queueing
 //! in the server avoids busy-waiting), and each write is one `BEGIN IMMEDIATE`
-//! transaction on a connection kept for writes. Reads go to a pool of their own and,
+//! transaction on a connection kept for writes. The work queue's requests (lease,
+//! extend, release, results) reach it through `crate::writer`, which runs all the
+//! requests waiting at one moment in one such transaction. Reads go to a pool of their own and,
 //! in WAL mode, never wait for the writer.
 
 use crate::auth::{self, Role};
@@ -327,6 +329,20 @@ impl Deltas {
             self.add(campaign, from, -1, -volume);
             self.add(campaign, to, 1, volume);
         }
+    }
+
+    /// Add the changes of `other` (a request of a group that succeeded).
+    pub fn merge(&mut self, other: Deltas) {
+        for ((c, s), (n, v)) in other.0 {
+            let e = self.0.entry((c, s)).or_insert((0, 0));
+            e.0 += n;
+            e.1 += v;
+        }
+    }
+
+    /// The net number of cells these changes add to `campaign` (all statuses).
+    pub fn cells_of(&self, campaign: &str) -> i64 {
+        self.0.iter().filter(|((c, _), _)| c == campaign).map(|(_, (n, _))| n).sum()
     }
 
     /// Apply the changes, then mark campaigns with no pending or leased cell left as
