@@ -201,6 +201,7 @@ async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdic
     }
     let elapsed = t0.elapsed().as_secs_f64();
     let n = done.load(Ordering::Relaxed);
+    let c = server.state.writer.counts();
     println!(
         "http  workers={workers:4} batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s)  lease p50 {:.2} ms p99 {:.2} ms  submit p50 {:.2} ms p99 {:.2} ms",
         n as f64 / elapsed,
@@ -208,6 +209,16 @@ async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdic
         pct(&mut lease_lat, 0.99) * 1e3,
         pct(&mut submit_lat, 0.5) * 1e3,
         pct(&mut submit_lat, 0.99) * 1e3,
+    );
+    println!(
+        "      writer: {} group transactions, {:.1} requests each on average; busy {:.0}% of the run: \
+         requests {:.0}%, COMMIT {:.0}% ({:.2} ms per COMMIT)",
+        c.groups,
+        c.requests as f64 / c.groups.max(1) as f64,
+        100.0 * (c.work_seconds + c.commit_seconds) / elapsed,
+        100.0 * c.work_seconds / elapsed,
+        100.0 * c.commit_seconds / elapsed,
+        1e3 * c.commit_seconds / c.groups.max(1) as f64,
     );
     server.stop().await?;
     Ok(n as f64 / elapsed)
