@@ -67,18 +67,26 @@ pub struct LeaseStats {
     pub reclaimed: u64,
 }
 
-/// Lease up to `max` pending cells of running campaigns: higher campaign priority
-/// first, then shallower (larger) cells, then older ones. Expired leases are returned
-/// to the queue first, in the same transaction.
+/// One lease request: up to `max` cells for `worker`.
+#[derive(Debug, Clone, Copy)]
+pub struct Want<'a> {
+    pub max: u32,
+    pub worker: &'a str,
+}
+
+/// Lease pending cells of running campaigns (of `only_campaign` alone, if given) for
+/// several requests at once: higher campaign priority first, then shallower (larger)
+/// cells, then older ones; the first request takes its share of that order first.
+/// Expired leases are returned to the queue first, in the same transaction. Returns
+/// the cells of each request, in the order of `wants`.
 pub async fn lease_in(
     store: &Store,
     tx: &mut Transaction<'static, Sqlite>,
     limits: QueueLimits,
-    max: u32,
-    worker: &str,
+    wants: &[Want<'_>],
     only_campaign: Option<&str>,
     deltas: &mut Deltas,
-) -> ApiResult<(Vec<LeasedCell>, LeaseStats)> {
+) -> ApiResult<(Vec<Vec<LeasedCell>>, LeaseStats)> {
     let now = now_ms();
     let reclaimed = reclaim_expired_in(store, tx, limits, now, deltas).await?;
 
@@ -94,9 +102,13 @@ pub async fn lease_in(
             .await?,
     };
     let expires = now + limits.lease_ms;
-    let mut out = Vec::new();
+    let mut out: Vec<Vec<LeasedCell>> = vec![Vec::new(); wants.len()];
+    // The request being served, and what it still wants.
+    let mut k = 0;
+    let total: usize = wants.iter().map(|w| w.max as usize).sum();
+    let mut given = 0;
     for cid in campaigns {
-        let want = max as usize - out.len();
+        let want = total - given;
         if want == 0 {
             break;
         }
@@ -115,6 +127,9 @@ pub async fn lease_in(
         }
         let mut picked = Vec::with_capacity(rows.len());
         for r in &rows {
+            while out[k].len() >= wants[k].max as usize {
+                k += 1;
+            }
             let rowid: i64 = r.try_get(0)?;
             let id: String = r.try_get(1)?;
             let depth: i64 = r.try_get(2)?;
@@ -122,7 +137,7 @@ pub async fn lease_in(
             let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
             let lease_id = crate::store::new_id();
             deltas.moved(&cid, CellStatus::Pending, CellStatus::Leased, refine::volume(info.max_depth, depth as u32));
-            out.push(LeasedCell {
+            out[k].push(LeasedCell {
                 cell_id: id,
                 lease_id: lease_id.clone(),
                 campaign_id: cid.clone(),
@@ -131,19 +146,20 @@ pub async fn lease_in(
                 cell_box: info.full_box(&cell),
                 expires_at_ms: expires,
             });
-            picked.push((rowid, lease_id));
+            picked.push((rowid, lease_id, wants[k].worker));
+            given += 1;
         }
         for (chunk, size) in fixed_chunks(&picked) {
             let sql = format!(
-                "UPDATE cells SET status = ?, lease_id = v.column2, lease_expires_at = ?, leased_by = ?,
+                "UPDATE cells SET status = ?, lease_id = v.column2, lease_expires_at = ?, leased_by = v.column3,
                  leased_at = ?, updated_at = ? FROM (VALUES {}) AS v WHERE cells.rowid = v.column1",
-                tuples(size, 2)
+                tuples(size, 3)
             );
-            let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str()).bind(expires).bind(worker).bind(now).bind(now);
-            for (rowid, lid) in chunk {
-                q = q.bind(*rowid).bind(lid.as_str());
+            let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str()).bind(expires).bind(now).bind(now);
+            for (rowid, lid, worker) in chunk {
+                q = q.bind(*rowid).bind(lid.as_str()).bind(*worker);
             }
-            bind_nulls(q, 2 * (size - chunk.len())).execute(&mut **tx).await?;
+            bind_nulls(q, 3 * (size - chunk.len())).execute(&mut **tx).await?;
         }
     }
     Ok((out, LeaseStats { reclaimed }))
@@ -484,21 +500,23 @@ struct HeldCell {
     coarse_dim: Option<usize>,
 }
 
-/// Accept a checked batch of results (each at most once, by lease id) and refine the
-/// cells. `pending` holds counter changes of this transaction not yet applied (other
-/// requests of the same group): the cell limit counts them.
+/// Accept checked batches of results (each at most once, by lease id) and refine the
+/// cells, for several requests at once (in the order of `subs`). `pending` holds
+/// counter changes of this transaction not yet applied (other requests of the same
+/// group): the cell limit counts them. Returns the answers of each request.
 pub async fn submit_in(
     store: &Store,
     tx: &mut Transaction<'static, Sqlite>,
     limits: QueueLimits,
-    sub: &Submission,
+    subs: &[&Submission],
     pending: &Deltas,
     deltas: &mut Deltas,
-) -> ApiResult<(Vec<ItemAnswer>, SubmitStats)> {
-    let mut answers = sub.answers.clone();
+) -> ApiResult<Vec<(Vec<ItemAnswer>, SubmitStats)>> {
+    let mut answers: Vec<Vec<Option<ItemAnswer>>> = subs.iter().map(|s| s.answers.clone()).collect();
     let now = now_ms();
-    let worker = sub.worker.as_str();
-    let engine_version = sub.engine_version.as_deref();
+    // Every result to record, with the request it came in.
+    let items: Vec<(usize, &Checked)> =
+        subs.iter().enumerate().flat_map(|(k, s)| s.items.iter().map(move |c| (k, c))).collect();
 
     // The cells holding these leases.
     let mut held: HashMap<String, HeldCell> = HashMap::new();
@@ -527,7 +545,7 @@ pub async fn submit_in(
     ];
     for (pass, leading) in passes {
         let ids: Vec<&str> =
-            sub.items.iter().map(|c| c.lease_id.as_str()).filter(|l| !held.contains_key(*l)).collect();
+            items.iter().map(|(_, c)| c.lease_id.as_str()).filter(|l| !held.contains_key(*l)).collect();
         for (chunk, size) in fixed_chunks(&ids) {
             let sql = format!("{pass} ({})", params(size));
             let mut q = sqlx::query(&sql);
@@ -587,10 +605,21 @@ pub async fn submit_in(
     // A cell takes one result per batch (two expired leases of one cell may both answer).
     let mut decided: HashSet<String> = HashSet::new();
     let mut per_campaign: HashMap<String, i64> = HashMap::new();
-    let mut stats = SubmitStats::default();
-    for it in &sub.items {
+    let mut stats = vec![SubmitStats::default(); subs.len()];
+    // Leases given a result here (one request may repeat another's).
+    let mut taken: HashSet<&str> = HashSet::new();
+    for &(k, it) in &items {
         let i = it.index;
+        let answers = &mut answers[k];
         let outcome = &it.outcome;
+        if taken.contains(it.lease_id.as_str()) {
+            answers[i] = Some(reject(
+                &it.lease_id,
+                LeaseStatus::Duplicate,
+                "a result for this lease was already accepted; this one is ignored",
+            ));
+            continue;
+        }
         let Some(h) = held.remove(&it.lease_id) else {
             let status = match ended_status(tx, &it.lease_id).await? {
                 LeaseStatus::Completed => LeaseStatus::Duplicate,
@@ -657,6 +686,7 @@ pub async fn submit_in(
                 split_dim = Some(dim as i64);
                 children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, a));
                 children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, b));
+                stats[k].cells_created += 2;
                 deltas.add(&h.campaign_id, CellStatus::Pending, 2, vol);
                 CellStatus::Split
             }
@@ -678,13 +708,16 @@ pub async fn submit_in(
             h.campaign_id.clone(),
             h.id.clone(),
             it.lease_id.as_str(),
+            subs[k].worker.as_str(),
             outcome.kind(),
             it.json.as_str(),
+            subs[k].engine_version.as_deref(),
             it.elapsed_ms,
             h.leased_at,
         ));
         cell_rows.push((h.rowid, status, split_dim, attempts, error, result_id));
-        stats.accepted += 1;
+        taken.insert(it.lease_id.as_str());
+        stats[k].accepted += 1;
         answers[i] = Some(ItemAnswer { cell_status: Some(status), ..ItemAnswer::new(&it.lease_id, LeaseStatus::Accepted) });
     }
 
@@ -695,16 +728,16 @@ pub async fn submit_in(
             tuples(size, 11)
         );
         let mut q = sqlx::query(&sql);
-        for (id, cid, cell, lease, kind, json, elapsed, leased_at) in chunk {
+        for (id, cid, cell, lease, worker, kind, json, engine_version, elapsed, leased_at) in chunk {
             q = q
                 .bind(id.as_str())
                 .bind(cid.as_str())
                 .bind(cell.as_str())
                 .bind(*lease)
-                .bind(worker)
+                .bind(*worker)
                 .bind(*kind)
                 .bind(*json)
-                .bind(engine_version)
+                .bind(*engine_version)
                 .bind(*elapsed)
                 .bind(*leased_at)
                 .bind(now);
@@ -725,7 +758,6 @@ pub async fn submit_in(
         }
         bind_nulls(q, 6 * (size - chunk.len())).execute(&mut **tx).await?;
     }
-    stats.cells_created = children.len() as u64;
     insert_cells(tx, &children, now).await?;
     for (cid, n) in &per_campaign {
         sqlx::query(
@@ -741,9 +773,15 @@ pub async fn submit_in(
         .await?;
     }
 
-    let answers: Vec<ItemAnswer> = answers.into_iter().flatten().collect();
-    stats.rejected = answers.len() as u64 - stats.accepted;
-    Ok((answers, stats))
+    Ok(answers
+        .into_iter()
+        .zip(stats)
+        .map(|(answers, mut stats)| {
+            let answers: Vec<ItemAnswer> = answers.into_iter().flatten().collect();
+            stats.rejected = answers.len() as u64 - stats.accepted;
+            (answers, stats)
+        })
+        .collect())
 }
 
 fn reject(lease_id: &str, status: LeaseStatus, detail: &str) -> ItemAnswer {

@@ -61,6 +61,7 @@ async fn a_failing_request_spoils_no_other_request_of_its_group() {
         (2, 4),
         "the lease alone, then the three waiting requests in one group"
     );
+    assert_eq!(after.retried - before.retried, 1, "the group ran again one request per savepoint");
 
     assert_eq!(first.status, 200, "{}", first.text());
     assert_eq!(first.json()["leases"].as_array().unwrap().len(), 1);
@@ -83,4 +84,51 @@ async fn a_failing_request_spoils_no_other_request_of_its_group() {
         .unwrap();
     assert_eq!(stored, 8);
     assert_eq!(tiling(&ts, &id).await["ok"], true, "counters equal the recount, leaves tile the envelope");
+}
+
+/// Two requests of one group carrying a result for the same lease (a worker that sent
+/// again while its first request was still waiting): the first counts, the second is
+/// a duplicate, and the cell is decided once.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_same_result_twice_in_one_group_counts_once() {
+    let dir = tempfile::tempdir().unwrap();
+    let ts = std::sync::Arc::new(start(config(dir.path())).await);
+    let model = upload_model(&ts, "twice").await;
+    let id = create_campaign(&ts, &spec(&model, 8), "?initial_depth=2").await;
+    let cells = lease(&ts, 4).await;
+    let results: Vec<Value> = cells.iter().map(|c| json!({"lease_id": c["lease_id"], "result": scripted(c)})).collect();
+    let store = ts.server.state.store.clone();
+    let before = ts.server.state.writer.counts();
+    let held = store.write().await.unwrap();
+    let post = |body: Value| {
+        let ts = ts.clone();
+        tokio::spawn(async move { ts.client.post("/api/v1/results", ts.token(Role::Worker), &body).await })
+    };
+    let filler = {
+        let ts = ts.clone();
+        tokio::spawn(async move { ts.client.post("/api/v1/leases", ts.token(Role::Worker), &json!({"max": 1})).await })
+    };
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    let a = post(json!({"worker": "w", "results": results}));
+    let b = post(json!({"worker": "w", "results": [results[1].clone(), results[3].clone()]}));
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    held.commit().await.unwrap();
+    let (filler, a, b) = (filler.await.unwrap(), a.await.unwrap(), b.await.unwrap());
+    let after = ts.server.state.writer.counts();
+    assert_eq!((after.groups - before.groups, after.requests - before.requests, after.retried - before.retried), (2, 3, 0));
+    assert_eq!(filler.status, 200, "{}", filler.text());
+    // Which of the two requests the writer met first is not fixed: between them,
+    // four results counted and the two repeated ones are duplicates.
+    assert_eq!((a.status, b.status), (200, 200), "{} {}", a.text(), b.text());
+    let items: Vec<Value> =
+        [a.json(), b.json()].iter().flat_map(|r| r["items"].as_array().unwrap().clone()).collect();
+    let count = |status: &str| items.iter().filter(|i| i["status"] == status).count();
+    assert_eq!((count("accepted"), count("duplicate"), items.len()), (4, 2, 6), "{items:?}");
+    let stored: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM results WHERE campaign_id = ?")
+        .bind(&id)
+        .fetch_one(&store.pool)
+        .await
+        .unwrap();
+    assert_eq!(stored, 4);
+    assert_eq!(tiling(&ts, &id).await["ok"], true);
 }
