@@ -297,7 +297,13 @@ async fn run(store: Weak<Store>, limits: QueueLimits, mut rx: mpsc::UnboundedRec
         // told nothing, so its worker sends the results again or leases anew.
         jobs.retain(|j| !j.reply.is_closed());
         let Some(store) = store.upgrade() else { break };
-        commit_group(&store, limits, std::mem::take(&mut jobs), &counts).await;
+        // In a task of its own, so that a panic there (a bug) ends one group, not the
+        // writer: its transaction is rolled back when dropped, and its callers are
+        // answered with an error when their reply senders are dropped.
+        let (group, counts) = (std::mem::take(&mut jobs), counts.clone());
+        if let Err(e) = tokio::spawn(async move { commit_group(&store, limits, group, &counts).await }).await {
+            tracing::error!("a group transaction panicked: {e}");
+        }
     }
 }
 
