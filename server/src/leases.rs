@@ -1,8 +1,9 @@
 //! The work queue: leasing cells in batches, extending leases, accepting results and
 //! refining cells. Each operation here runs inside a transaction its caller owns
-//! (`*_in`): the group writer (`crate::writer`) runs many requests in one transaction,
-//! one savepoint each. The per-status counter changes of an operation are collected
-//! in a [`Deltas`] that the caller applies in the same transaction.
+//! (`*_in`): the group writer (`crate::writer`) runs many requests in one transaction.
+//! Leasing and accepting results serve several requests in one call (a few statements
+//! for all of them). The per-status counter changes of an operation are collected in a
+//! [`Deltas`] that the caller applies in the same transaction.
 
 use crate::error::{ApiError, ApiResult};
 use crate::refine::{self, CellBox};
