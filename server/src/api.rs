@@ -293,7 +293,7 @@ async fn healthz(State(st): State<AppState>) -> Response {
 }
 
 async fn metrics(State(st): State<AppState>) -> ApiResult<Response> {
-    let text = st.metrics.render(&st.store).await?;
+    let text = st.metrics.render(&st.store, st.writer.counts()).await?;
     Ok(([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], text).into_response())
 }
 
