@@ -4,7 +4,11 @@
 //! fixed time; prints sustained cells/s and lease/submit latency percentiles. Then,
 //! in the same run, the raw rate of the same batched SQLite work without HTTP.
 //!
-//!     cargo run --release -p tessera-server --example bench_server -- [--workers 8,64,256] [--seconds 15] [--batch 32]
+//!     cargo run --release -p tessera-server --example bench_server -- [--workers 8,64,256] [--seconds 15] [--batch 32] [--separate]
+//!
+//! `--separate` runs the synthetic workers in a process of their own (this program
+//! again, with `--drive URL` and the worker token in `TESSERA_BENCH_TOKEN`), so that the
+//! server's process serves HTTP only.
 //!
 //! Verdicts are a deterministic function of the cell id: half inconclusive (split),
 //! three eighths safe, one eighth unsafe, so the queue neither drains nor explodes.
@@ -24,6 +28,7 @@ use std::time::{Duration, Instant};
 use tessera_server::auth::Role;
 use tessera_protocol::ResultItem;
 use tessera_server::leases;
+use tessera_server::writer::Writer;
 use tessera_server::Config;
 
 /// The three verdict texts, made once.
@@ -126,7 +131,7 @@ fn pct(v: &mut [f64], p: f64) -> f64 {
 }
 
 /// Cells per second over HTTP.
-async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdicts>) -> anyhow::Result<f64> {
+async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdicts>, separate: bool) -> anyhow::Result<f64> {
     let dir = tempfile::tempdir()?;
     let mut cfg = Config::for_tests(dir.path().join("bench.sqlite"));
     cfg.max_lease_batch = batch.max(1);
@@ -136,29 +141,84 @@ async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdic
     let work = store.create_token(Role::Worker, "bench").await.map_err(|e| anyhow::anyhow!(e.detail))?;
     let base = server.url();
     let client: Client<_, Full<Bytes>> = Client::builder(TokioExecutor::new()).build_http();
-    let call = |client: Client<hyper_util::client::legacy::connect::HttpConnector, Full<Bytes>>, path: String, token: String, body: Vec<u8>| async move {
-        let req = hyper::Request::post(path)
-            .header("authorization", format!("Bearer {token}"))
-            .header("content-type", "application/json")
-            .body(Full::new(Bytes::from(body)))?;
-        let resp = client.request(req).await?;
-        let status = resp.status();
-        let bytes = resp.into_body().collect().await?.to_bytes();
-        anyhow::ensure!(status.is_success(), "{status}: {}", String::from_utf8_lossy(&bytes));
-        Ok::<Value, anyhow::Error>(serde_json::from_slice(&bytes)?)
-    };
     let model = tessera_server::model_check::testing::tiny_model(1, 2, "bench");
-    let m = call(client.clone(), format!("{base}/api/v1/models"), sub.clone(), model).await?;
+    let m = call(&client, format!("{base}/api/v1/models"), sub.clone(), model).await?;
     let model = m["sha256"].as_str().unwrap_or_default().to_string();
-    call(client.clone(), format!("{base}/api/v1/campaigns?initial_depth=14"), sub.clone(), spec(&model).to_string().into_bytes())
+    call(&client, format!("{base}/api/v1/campaigns?initial_depth=14"), sub.clone(), spec(&model).to_string().into_bytes())
         .await?;
 
+    let d = if separate {
+        // The synthetic workers in a process of their own: this binary again, with
+        // `--drive`, printing its figures as one JSON line.
+        let out = tokio::process::Command::new(std::env::current_exe()?)
+            .args(["--drive", &base, "--workers", &workers.to_string(), "--seconds", &seconds.to_string()])
+            .env("TESSERA_BENCH_TOKEN", &work)
+            .args(["--batch", &batch.to_string()])
+            .output()
+            .await?;
+        anyhow::ensure!(out.status.success(), "the workers' process failed: {}", String::from_utf8_lossy(&out.stderr));
+        serde_json::from_slice::<Driven>(&out.stdout)?
+    } else {
+        drive(&base, &work, workers, seconds, batch, verdicts).await?
+    };
+    let (n, elapsed) = (d.cells, d.seconds);
+    let c = server.state.writer.counts();
+    println!(
+        "http  workers={workers:4} batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s)  lease p50 {:.2} ms p99 {:.2} ms  submit p50 {:.2} ms p99 {:.2} ms",
+        n as f64 / elapsed,
+        d.lease_ms[0],
+        d.lease_ms[1],
+        d.submit_ms[0],
+        d.submit_ms[1],
+    );
+    println!(
+        "      writer: {} group transactions, {:.1} requests each on average; busy {:.0}% of the run: \
+         requests {:.0}%, COMMIT {:.0}% ({:.2} ms per COMMIT)",
+        c.groups,
+        c.requests as f64 / c.groups.max(1) as f64,
+        100.0 * (c.work_seconds + c.commit_seconds) / elapsed,
+        100.0 * c.work_seconds / elapsed,
+        100.0 * c.commit_seconds / elapsed,
+        1e3 * c.commit_seconds / c.groups.max(1) as f64,
+    );
+    server.stop().await?;
+    Ok(n as f64 / elapsed)
+}
+
+type Http = Client<hyper_util::client::legacy::connect::HttpConnector, Full<Bytes>>;
+
+/// POST `body` to `path` with `token`; the answer's JSON.
+async fn call(client: &Http, path: String, token: String, body: Vec<u8>) -> anyhow::Result<Value> {
+    let req = hyper::Request::post(path)
+        .header("authorization", format!("Bearer {token}"))
+        .header("content-type", "application/json")
+        .body(Full::new(Bytes::from(body)))?;
+    let resp = client.request(req).await?;
+    let status = resp.status();
+    let bytes = resp.into_body().collect().await?.to_bytes();
+    anyhow::ensure!(status.is_success(), "{status}: {}", String::from_utf8_lossy(&bytes));
+    Ok(serde_json::from_slice(&bytes)?)
+}
+
+/// What the synthetic workers did: results accepted, seconds, lease and submit
+/// latency (p50, p99) in milliseconds.
+#[derive(serde::Serialize, serde::Deserialize)]
+struct Driven {
+    cells: u64,
+    seconds: f64,
+    lease_ms: [f64; 2],
+    submit_ms: [f64; 2],
+}
+
+/// `workers` synthetic workers against the server at `base` for `seconds`.
+async fn drive(base: &str, work: &str, workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdicts>) -> anyhow::Result<Driven> {
+    let client: Http = Client::builder(TokioExecutor::new()).build_http();
     let done = Arc::new(AtomicU64::new(0));
     let deadline = Instant::now() + Duration::from_secs(seconds);
     let t0 = Instant::now();
     let mut tasks = Vec::new();
     for w in 0..workers {
-        let (client, base, work, done, verdicts) = (client.clone(), base.clone(), work.clone(), done.clone(), verdicts.clone());
+        let (client, base, work, done, verdicts) = (client.clone(), base.to_string(), work.to_string(), done.clone(), verdicts.clone());
         tasks.push(tokio::spawn(async move {
             let mut lease_lat = Vec::new();
             let mut submit_lat = Vec::new();
@@ -166,7 +226,7 @@ async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdic
             while Instant::now() < deadline {
                 let t = Instant::now();
                 let body = json!({"max": batch, "worker": name}).to_string().into_bytes();
-                let r = call(client.clone(), format!("{base}/api/v1/leases"), work.clone(), body).await?;
+                let r = call(&client, format!("{base}/api/v1/leases"), work.clone(), body).await?;
                 lease_lat.push(t.elapsed().as_secs_f64());
                 let cells = r["leases"].as_array().cloned().unwrap_or_default();
                 if cells.is_empty() {
@@ -184,7 +244,7 @@ async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdic
                 body.push_str("]}");
                 let body = body.into_bytes();
                 let t = Instant::now();
-                let r = call(client.clone(), format!("{base}/api/v1/results"), work.clone(), body).await?;
+                let r = call(&client, format!("{base}/api/v1/results"), work.clone(), body).await?;
                 submit_lat.push(t.elapsed().as_secs_f64());
                 done.fetch_add(r["accepted"].as_u64().unwrap_or(0), Ordering::Relaxed);
             }
@@ -199,17 +259,12 @@ async fn http_run(workers: usize, seconds: u64, batch: u32, verdicts: Arc<Verdic
         submit_lat.extend(s);
     }
     let elapsed = t0.elapsed().as_secs_f64();
-    let n = done.load(Ordering::Relaxed);
-    println!(
-        "http  workers={workers:4} batch={batch:3}  {:>9.0} cells/s  ({n} cells in {elapsed:.1} s)  lease p50 {:.2} ms p99 {:.2} ms  submit p50 {:.2} ms p99 {:.2} ms",
-        n as f64 / elapsed,
-        pct(&mut lease_lat, 0.5) * 1e3,
-        pct(&mut lease_lat, 0.99) * 1e3,
-        pct(&mut submit_lat, 0.5) * 1e3,
-        pct(&mut submit_lat, 0.99) * 1e3,
-    );
-    server.stop().await?;
-    Ok(n as f64 / elapsed)
+    Ok(Driven {
+        cells: done.load(Ordering::Relaxed),
+        seconds: elapsed,
+        lease_ms: [pct(&mut lease_lat, 0.5) * 1e3, pct(&mut lease_lat, 0.99) * 1e3],
+        submit_ms: [pct(&mut submit_lat, 0.5) * 1e3, pct(&mut submit_lat, 0.99) * 1e3],
+    })
 }
 
 /// The same lease/submit transactions, called directly on the store.
@@ -236,7 +291,7 @@ async fn raw_run(seconds: u64, batch: u32, verdicts: &Verdicts) -> anyhow::Resul
     let (mut t_lease, mut t_submit) = (0.0, 0.0);
     while t0.elapsed() < Duration::from_secs(seconds) {
         let t = Instant::now();
-        let (cells, _) = leases::lease(&store, limits, batch, "raw", None).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+        let (cells, _) = Writer::lease_alone(&store, limits, batch, "raw").await.map_err(|e| anyhow::anyhow!(e.detail))?;
         t_lease += t.elapsed().as_secs_f64();
         let t = Instant::now();
         let items: Vec<ResultItem> = cells
@@ -249,7 +304,7 @@ async fn raw_run(seconds: u64, batch: u32, verdicts: &Verdicts) -> anyhow::Resul
             })
             .collect();
         let (_, stats) =
-            leases::submit(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
+            Writer::submit_alone(&store, limits, "raw", Some("bench"), &items).await.map_err(|e| anyhow::anyhow!(e.detail))?;
         n += stats.accepted;
         t_submit += t.elapsed().as_secs_f64();
     }
@@ -276,9 +331,19 @@ async fn main() -> anyhow::Result<()> {
     let seconds: u64 = arg("--seconds").and_then(|s| s.parse().ok()).unwrap_or(15);
     let batch: u32 = arg("--batch").and_then(|s| s.parse().ok()).unwrap_or(32);
     let verdicts = Arc::new(Verdicts::new());
+    if let Some(i) = args.iter().position(|a| a == "--drive") {
+        // The workers' process of `--separate`: drive the server named, print the figures.
+        let base = args.get(i + 1).cloned().unwrap_or_default();
+        let work = std::env::var("TESSERA_BENCH_TOKEN").unwrap_or_default();
+        let w = workers.first().copied().unwrap_or(1);
+        println!("{}", serde_json::to_string(&drive(&base, &work, w, seconds, batch, verdicts).await?)?);
+        return Ok(());
+    }
+    let separate = args.iter().any(|a| a == "--separate");
     println!(
-        "tessera-server benchmark: {seconds} s per run, loopback, server and workers in one process; verdicts of {} / {} / {} bytes \
+        "tessera-server benchmark: {seconds} s per run, loopback, {}; verdicts of {} / {} / {} bytes \
          (inconclusive / safe / unsafe), {:.0} bytes on average; load average {}",
+        if separate { "synthetic workers in a process of their own" } else { "server and workers in one process" },
         verdicts.inconclusive.len(),
         verdicts.safe.len(),
         verdicts.unsafe_.len(),
@@ -287,7 +352,7 @@ async fn main() -> anyhow::Result<()> {
     );
     let mut rates = Vec::new();
     for w in workers {
-        rates.push((w, http_run(w, seconds, batch, verdicts.clone()).await?));
+        rates.push((w, http_run(w, seconds, batch, verdicts.clone(), separate).await?));
     }
     raw_run(seconds.min(10), batch, &verdicts).await?;
     raw_run(seconds.min(10), 256, &verdicts).await?;

@@ -7,7 +7,8 @@ use crate::{report, tiling, views};
 use crate::config::{Config, MAX_JSON_BYTES, MAX_MODEL_BYTES};
 use crate::dashboard;
 use crate::error::{ApiError, ApiResult};
-use crate::leases::{self, QueueLimits};
+use crate::leases::QueueLimits;
+use crate::writer::Writer;
 use crate::metrics::Metrics;
 use crate::openapi::{self, BodyKind, RouteDoc};
 use crate::store::Store;
@@ -32,21 +33,28 @@ pub struct AppState {
     pub store: Arc<Store>,
     pub config: Arc<Config>,
     pub metrics: Arc<Metrics>,
+    /// The group writer every lease, extend, release and result request goes through.
+    pub writer: Writer,
     access: Arc<HashMap<(Method, String), Access>>,
 }
 
 impl AppState {
     pub fn new(store: Arc<Store>, config: Config) -> AppState {
         let access = routes().into_iter().map(|r| ((r.doc.method, r.doc.path.to_string()), r.doc.access)).collect();
-        AppState { store, config: Arc::new(config), metrics: Arc::new(Metrics::default()), access: Arc::new(access) }
+        let writer = Writer::start(&store, queue_limits(&config));
+        AppState { store, config: Arc::new(config), metrics: Arc::new(Metrics::default()), writer, access: Arc::new(access) }
     }
     pub fn limits(&self) -> QueueLimits {
-        QueueLimits {
-            lease_ms: self.config.lease_seconds as i64 * 1000,
-            max_attempts: self.config.max_attempts,
-            max_expiries: self.config.max_expiries,
-            max_cells_per_campaign: self.config.max_cells_per_campaign,
-        }
+        queue_limits(&self.config)
+    }
+}
+
+fn queue_limits(config: &Config) -> QueueLimits {
+    QueueLimits {
+        lease_ms: config.lease_seconds as i64 * 1000,
+        max_attempts: config.max_attempts,
+        max_expiries: config.max_expiries,
+        max_cells_per_campaign: config.max_cells_per_campaign,
     }
 }
 
@@ -286,7 +294,7 @@ async fn healthz(State(st): State<AppState>) -> Response {
 }
 
 async fn metrics(State(st): State<AppState>) -> ApiResult<Response> {
-    let text = st.metrics.render(&st.store).await?;
+    let text = st.metrics.render(&st.store, st.writer.counts()).await?;
     Ok(([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], text).into_response())
 }
 
@@ -501,7 +509,7 @@ async fn lease(State(st): State<AppState>, JsonBody(req): JsonBody<LeaseRequest>
     let worker = worker_name(&req.worker, "worker")?;
     let t0 = Instant::now();
     let max = req.max.min(st.config.max_lease_batch);
-    let (cells, stats) = leases::lease(&st.store, st.limits(), max, &worker, req.campaign_id.as_deref()).await?;
+    let (cells, stats) = st.writer.lease(max, &worker, req.campaign_id.as_deref()).await?;
     st.metrics.lease_seconds.observe(t0.elapsed().as_secs_f64());
     Metrics::add(&st.metrics.leases_issued, cells.len() as u64);
     Metrics::add(&st.metrics.leases_reclaimed, stats.reclaimed);
@@ -512,7 +520,7 @@ async fn extend(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendReques
     if req.lease_ids.len() > 10_000 {
         return Err(ApiError::unprocessable("limit", "at most 10000 lease ids per request").field("lease_ids"));
     }
-    let items = leases::extend(&st.store, st.limits(), &req.lease_ids).await?;
+    let items = st.writer.extend(&req.lease_ids).await?;
     Ok(Json(ExtendAnswer { items, lease_seconds: st.config.lease_seconds }))
 }
 
@@ -520,7 +528,7 @@ async fn release(State(st): State<AppState>, JsonBody(req): JsonBody<ExtendReque
     if req.lease_ids.len() > 10_000 {
         return Err(ApiError::unprocessable("limit", "at most 10000 lease ids per request").field("lease_ids"));
     }
-    let items = leases::release(&st.store, st.limits(), &req.lease_ids).await?;
+    let items = st.writer.release(&req.lease_ids).await?;
     Ok(Json(ReleaseAnswer { items }))
 }
 
@@ -533,7 +541,7 @@ async fn submit(State(st): State<AppState>, JsonBody(req): JsonBody<SubmitReques
         return Err(ApiError::unprocessable("invalid_request", "engine_version longer than 100 bytes").field("engine_version"));
     }
     let t0 = Instant::now();
-    let (items, stats) = leases::submit(&st.store, st.limits(), &worker, req.engine_version.as_deref(), &req.results).await?;
+    let (items, stats) = st.writer.submit(&worker, req.engine_version.as_deref(), &req.results).await?;
     st.metrics.submit_seconds.observe(t0.elapsed().as_secs_f64());
     Metrics::add(&st.metrics.results_accepted, stats.accepted);
     Metrics::add(&st.metrics.results_rejected, stats.rejected);

@@ -85,7 +85,7 @@ pub async fn create(store: &Store, max_depth_limit: u32, max_cells: u64, body: &
 
     let canonical = spec.canonical_json();
     let hash = hex::encode(sha2::Sha256::digest(canonical.as_bytes()));
-    let id = uuid::Uuid::new_v4().to_string();
+    let id = crate::store::new_id();
     let info = CampaignInfo::from_spec(&id, &hash, &spec);
     let now = now_ms();
 

@@ -130,7 +130,7 @@ pub async fn seed(store: &Store, prev_id: &str, next: &CampaignInfo, max_cells: 
     let mut stack: Vec<(usize, Option<String>)> = vec![(root, None)];
     while let Some((k, parent)) = stack.pop() {
         let c = &cells[k];
-        let id = uuid::Uuid::new_v4().to_string();
+        let id = crate::store::new_id();
         let kids = &children[k];
         let mut node = SeedCell {
             id: id.clone(),

@@ -1,17 +1,21 @@
 //! The work queue: leasing cells in batches, extending leases, accepting results and
-//! refining cells. Every batch is one transaction, and the per-status counters move
-//! in the same transaction as the cells.
+//! refining cells. Each operation here runs inside a transaction its caller owns
+//! (`*_in`): the group writer (`crate::writer`) runs many requests in one transaction.
+//! Leasing and accepting results serve several requests in one call (a few statements
+//! for all of them). The per-status counter changes of an operation are collected in a
+//! [`Deltas`] that the caller applies in the same transaction.
 
 use crate::error::{ApiError, ApiResult};
 use crate::refine::{self, CellBox};
 use crate::store::{now_ms, CampaignInfo, Deltas, Store};
 use sqlx::{Row, Sqlite, Transaction};
-use tessera_protocol::{CampaignState, CellStatus, ItemAnswer, LeaseStatus, LeasedCell, Outcome, ResultItem};
 use std::collections::{HashMap, HashSet};
 use std::sync::Arc;
+use tessera_protocol::{CampaignState, CellStatus, ItemAnswer, LeaseStatus, LeasedCell, Outcome, ResultItem};
 
-/// Rows per multi-row statement (keeps bound parameters well under SQLite's limit).
-const CHUNK: usize = 500;
+/// Rows per multi-row statement at most (the widest, the results insert, binds 11
+/// parameters per row: 2,816, well under SQLite's limit of 32,766).
+const CHUNK: usize = 256;
 
 /// Queue settings the operations need.
 #[derive(Clone, Copy, Debug)]
@@ -24,49 +28,88 @@ pub struct QueueLimits {
     pub max_cells_per_campaign: u64,
 }
 
+/// `rows` cut into statements of fixed sizes: full [`CHUNK`]s, then the rest in one
+/// statement of the next power of two at or above its length, whose free rows the
+/// caller fills with NULLs that match or insert nothing. A multi-row statement then
+/// has at most nine SQL texts (1, 2, 4, … 256 rows), each prepared once and kept in
+/// the connection's statement cache, instead of one text per batch length.
+fn fixed_chunks<T>(rows: &[T]) -> impl Iterator<Item = (&[T], usize)> {
+    rows.chunks(CHUNK).map(|c| (c, c.len().next_power_of_two()))
+}
+
+/// `(?, ?, …), (?, ?, …), …`: `rows` tuples of `cols` parameters.
 fn tuples(rows: usize, cols: usize) -> String {
     let one = format!("({})", vec!["?"; cols].join(", "));
     vec![one; rows].join(", ")
 }
 
+/// `?, ?, …`: `n` parameters (an `IN` list; free places are bound to NULL, which
+/// never matches).
+fn params(n: usize) -> String {
+    vec!["?"; n].join(", ")
+}
+
+/// Bind `n` NULLs (the free rows of a fixed-size statement).
+fn bind_nulls<'q>(
+    mut q: sqlx::query::Query<'q, Sqlite, sqlx::sqlite::SqliteArguments<'q>>,
+    n: usize,
+) -> sqlx::query::Query<'q, Sqlite, sqlx::sqlite::SqliteArguments<'q>> {
+    for _ in 0..n {
+        q = q.bind(None::<i64>);
+    }
+    q
+}
+
 // ------------------------------------------------------------------ leasing
 
-/// What [`lease`] did besides leasing.
+/// What [`lease_in`] did besides leasing.
 #[derive(Debug, Default, Clone, Copy)]
 pub struct LeaseStats {
     pub reclaimed: u64,
 }
 
-/// Lease up to `max` pending cells of running campaigns: higher campaign priority
-/// first, then shallower (larger) cells, then older ones. Expired leases are returned
-/// to the queue first, in the same transaction.
-pub async fn lease(
+/// One lease request: up to `max` cells for `worker`.
+#[derive(Debug, Clone, Copy)]
+pub struct Want<'a> {
+    pub max: u32,
+    pub worker: &'a str,
+}
+
+/// Lease pending cells of running campaigns (of `only_campaign` alone, if given) for
+/// several requests at once: higher campaign priority first, then shallower (larger)
+/// cells, then older ones; the first request takes its share of that order first.
+/// Expired leases are returned to the queue first, in the same transaction. Returns
+/// the cells of each request, in the order of `wants`.
+pub async fn lease_in(
     store: &Store,
+    tx: &mut Transaction<'static, Sqlite>,
     limits: QueueLimits,
-    max: u32,
-    worker: &str,
+    wants: &[Want<'_>],
     only_campaign: Option<&str>,
-) -> ApiResult<(Vec<LeasedCell>, LeaseStats)> {
-    let mut w = store.write().await?;
+    deltas: &mut Deltas,
+) -> ApiResult<(Vec<Vec<LeasedCell>>, LeaseStats)> {
     let now = now_ms();
-    let mut deltas = Deltas::default();
-    let reclaimed = reclaim_expired_in(store, &mut w.tx, limits, now, &mut deltas).await?;
+    let reclaimed = reclaim_expired_in(store, tx, limits, now, deltas).await?;
 
     let campaigns: Vec<String> = match only_campaign {
         Some(c) => sqlx::query_scalar("SELECT id FROM campaigns WHERE id = ? AND state = ?")
             .bind(c)
             .bind(CampaignState::Running.as_str())
-            .fetch_all(&mut *w.tx)
+            .fetch_all(&mut **tx)
             .await?,
         None => sqlx::query_scalar("SELECT id FROM campaigns WHERE state = ? ORDER BY priority DESC, created_at ASC, id ASC")
             .bind(CampaignState::Running.as_str())
-            .fetch_all(&mut *w.tx)
+            .fetch_all(&mut **tx)
             .await?,
     };
     let expires = now + limits.lease_ms;
-    let mut out = Vec::new();
+    let mut out: Vec<Vec<LeasedCell>> = vec![Vec::new(); wants.len()];
+    // The request being served, and what it still wants.
+    let mut k = 0;
+    let total: usize = wants.iter().map(|w| w.max as usize).sum();
+    let mut given = 0;
     for cid in campaigns {
-        let want = max as usize - out.len();
+        let want = total - given;
         if want == 0 {
             break;
         }
@@ -78,21 +121,24 @@ pub async fn lease(
         .bind(&cid)
         .bind(CellStatus::Pending.as_str())
         .bind(want as i64)
-        .fetch_all(&mut *w.tx)
+        .fetch_all(&mut **tx)
         .await?;
         if rows.is_empty() {
             continue;
         }
         let mut picked = Vec::with_capacity(rows.len());
         for r in &rows {
+            while out[k].len() >= wants[k].max as usize {
+                k += 1;
+            }
             let rowid: i64 = r.try_get(0)?;
             let id: String = r.try_get(1)?;
             let depth: i64 = r.try_get(2)?;
             let b: Vec<u8> = r.try_get(3)?;
             let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
-            let lease_id = uuid::Uuid::new_v4().to_string();
+            let lease_id = crate::store::new_id();
             deltas.moved(&cid, CellStatus::Pending, CellStatus::Leased, refine::volume(info.max_depth, depth as u32));
-            out.push(LeasedCell {
+            out[k].push(LeasedCell {
                 cell_id: id,
                 lease_id: lease_id.clone(),
                 campaign_id: cid.clone(),
@@ -101,23 +147,22 @@ pub async fn lease(
                 cell_box: info.full_box(&cell),
                 expires_at_ms: expires,
             });
-            picked.push((rowid, lease_id));
+            picked.push((rowid, lease_id, wants[k].worker));
+            given += 1;
         }
-        for chunk in picked.chunks(CHUNK) {
+        for (chunk, size) in fixed_chunks(&picked) {
             let sql = format!(
-                "UPDATE cells SET status = ?, lease_id = v.column2, lease_expires_at = ?, leased_by = ?,
+                "UPDATE cells SET status = ?, lease_id = v.column2, lease_expires_at = ?, leased_by = v.column3,
                  leased_at = ?, updated_at = ? FROM (VALUES {}) AS v WHERE cells.rowid = v.column1",
-                tuples(chunk.len(), 2)
+                tuples(size, 3)
             );
-            let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str()).bind(expires).bind(worker).bind(now).bind(now);
-            for (rowid, lid) in chunk {
-                q = q.bind(*rowid).bind(lid.as_str());
+            let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str()).bind(expires).bind(now).bind(now);
+            for (rowid, lid, worker) in chunk {
+                q = q.bind(*rowid).bind(lid.as_str()).bind(*worker);
             }
-            q.execute(&mut *w.tx).await?;
+            bind_nulls(q, 3 * (size - chunk.len())).execute(&mut **tx).await?;
         }
     }
-    deltas.apply(&mut w.tx).await?;
-    w.commit().await?;
     Ok((out, LeaseStats { reclaimed }))
 }
 
@@ -148,8 +193,9 @@ impl Ending {
     }
 }
 
-/// Return leases that expired before `now` to the queue (or mark their cells
-/// `failed` once they have outlived `max_expiries` leases). Returns how many.
+/// Return leases that expired before now to the queue (or mark their cells
+/// `failed` once they have outlived `max_expiries` leases), in a transaction of its
+/// own. Returns how many.
 pub async fn reclaim_expired(store: &Store, limits: QueueLimits) -> ApiResult<u64> {
     let mut w = store.write().await?;
     let mut deltas = Deltas::default();
@@ -196,7 +242,7 @@ async fn end_leases(
     reason: LeaseStatus,
     deltas: &mut Deltas,
 ) -> ApiResult<()> {
-    for chunk in ends.chunks(CHUNK) {
+    for (chunk, size) in fixed_chunks(&ends) {
         let mut rows = Vec::new();
         for e in chunk {
             let info = store
@@ -221,22 +267,23 @@ async fn end_leases(
             "UPDATE cells SET status = v.column2, expiries = v.column3, last_error = COALESCE(v.column4, last_error),
              lease_id = NULL, lease_expires_at = NULL, leased_by = NULL, updated_at = ?
              FROM (VALUES {}) AS v WHERE cells.rowid = v.column1",
-            tuples(rows.len(), 4)
+            tuples(size, 4)
         );
         let mut q = sqlx::query(&sql).bind(now);
         for (rowid, status, expiries, error) in &rows {
             q = q.bind(*rowid).bind(status.as_str()).bind(*expiries).bind(error.clone());
         }
-        q.execute(&mut **tx).await?;
+        bind_nulls(q, 4 * (size - chunk.len())).execute(&mut **tx).await?;
         let sql = format!(
-            "INSERT OR IGNORE INTO ended_leases (lease_id, cell_id, reason, ended_at) VALUES {}",
-            tuples(chunk.len(), 4)
+            "INSERT OR IGNORE INTO ended_leases (lease_id, cell_id, reason, ended_at)
+             SELECT * FROM (VALUES {}) WHERE column1 IS NOT NULL",
+            tuples(size, 4)
         );
         let mut q = sqlx::query(&sql);
         for e in chunk {
             q = q.bind(e.lease_id.as_str()).bind(e.cell_id.as_str()).bind(reason.as_str()).bind(now);
         }
-        q.execute(&mut **tx).await?;
+        bind_nulls(q, 4 * (size - chunk.len())).execute(&mut **tx).await?;
     }
     Ok(())
 }
@@ -244,32 +291,31 @@ async fn end_leases(
 /// Give leases back unfinished (a worker stopping): the cells return to `pending`
 /// without counting a failed attempt. Per lease: `released`, or why it is not held
 /// (`completed`, `expired`, `withdrawn`, `released`, `unknown_lease`).
-pub async fn release(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ItemAnswer>> {
-    let mut w = store.write().await?;
-    let mut deltas = Deltas::default();
+pub async fn release_in(
+    store: &Store,
+    tx: &mut Transaction<'static, Sqlite>,
+    limits: QueueLimits,
+    lease_ids: &[String],
+    deltas: &mut Deltas,
+) -> ApiResult<Vec<ItemAnswer>> {
     let mut ends = Vec::new();
-    for chunk in lease_ids.chunks(CHUNK) {
-        let sql = format!(
-            "SELECT {ENDING_COLS} FROM cells WHERE status = ? AND lease_id IN ({})",
-            vec!["?"; chunk.len()].join(", ")
-        );
+    for (chunk, size) in fixed_chunks(lease_ids) {
+        let sql = format!("SELECT {ENDING_COLS} FROM cells WHERE status = ? AND lease_id IN ({})", params(size));
         let mut q = sqlx::query(&sql).bind(CellStatus::Leased.as_str());
         for l in chunk {
             q = q.bind(l.as_str());
         }
-        for r in q.fetch_all(&mut *w.tx).await? {
+        for r in bind_nulls(q, size - chunk.len()).fetch_all(&mut **tx).await? {
             ends.push(Ending::from_row(&r)?);
         }
     }
     let released: HashSet<String> = ends.iter().map(|e| e.lease_id.clone()).collect();
-    end_leases(store, &mut w.tx, limits, now_ms(), ends, LeaseStatus::Released, &mut deltas).await?;
-    deltas.apply(&mut w.tx).await?;
+    end_leases(store, tx, limits, now_ms(), ends, LeaseStatus::Released, deltas).await?;
     let mut out = Vec::with_capacity(lease_ids.len());
     for l in lease_ids {
-        let status = if released.contains(l) { LeaseStatus::Released } else { ended_status(&mut w.tx, l).await? };
+        let status = if released.contains(l) { LeaseStatus::Released } else { ended_status(tx, l).await? };
         out.push(ItemAnswer::new(l, status));
     }
-    w.commit().await?;
     Ok(out)
 }
 
@@ -283,10 +329,10 @@ pub async fn withdraw_leases(
     deltas: &mut Deltas,
 ) -> ApiResult<()> {
     let rows = sqlx::query(&format!("SELECT {ENDING_COLS} FROM cells WHERE campaign_id = ? AND status = ?"))
-    .bind(campaign)
-    .bind(CellStatus::Leased.as_str())
-    .fetch_all(&mut **tx)
-    .await?;
+        .bind(campaign)
+        .bind(CellStatus::Leased.as_str())
+        .fetch_all(&mut **tx)
+        .await?;
     let mut ends = Vec::new();
     for r in rows {
         ends.push(Ending::from_row(&r)?);
@@ -299,32 +345,36 @@ pub async fn withdraw_leases(
 /// Push the expiry of each lease still held to now + lease time. A lease that ran
 /// out but was not swept yet is held still (nobody else has the cell) and is
 /// extended too: after an outage longer than the lease, the worker keeps its cells.
-pub async fn extend(store: &Store, limits: QueueLimits, lease_ids: &[String]) -> ApiResult<Vec<ItemAnswer>> {
-    let mut w = store.write().await?;
+pub async fn extend_in(
+    tx: &mut Transaction<'static, Sqlite>,
+    limits: QueueLimits,
+    lease_ids: &[String],
+) -> ApiResult<Vec<ItemAnswer>> {
     let now = now_ms();
     let expires = now + limits.lease_ms;
     let mut extended = HashSet::new();
-    for chunk in lease_ids.chunks(CHUNK) {
+    for (chunk, size) in fixed_chunks(lease_ids) {
         let sql = format!(
             "UPDATE cells SET lease_expires_at = ?, updated_at = ? WHERE status = ?
              AND lease_id IN ({}) RETURNING lease_id",
-            vec!["?"; chunk.len()].join(", ")
+            params(size)
         );
-        let mut q = sqlx::query_scalar::<_, String>(&sql).bind(expires).bind(now).bind(CellStatus::Leased.as_str());
+        let mut q = sqlx::query(&sql).bind(expires).bind(now).bind(CellStatus::Leased.as_str());
         for l in chunk {
             q = q.bind(l.as_str());
         }
-        extended.extend(q.fetch_all(&mut *w.tx).await?);
+        for r in bind_nulls(q, size - chunk.len()).fetch_all(&mut **tx).await? {
+            extended.insert(r.try_get::<String, _>(0)?);
+        }
     }
     let mut out = Vec::with_capacity(lease_ids.len());
     for l in lease_ids {
         if extended.contains(l) {
             out.push(ItemAnswer { expires_at_ms: Some(expires), ..ItemAnswer::new(l, LeaseStatus::Extended) });
         } else {
-            out.push(ItemAnswer::new(l, ended_status(&mut w.tx, l).await?));
+            out.push(ItemAnswer::new(l, ended_status(tx, l).await?));
         }
     }
-    w.commit().await?;
     Ok(out)
 }
 
@@ -376,6 +426,64 @@ pub struct SubmitStats {
     pub cells_created: u64,
 }
 
+/// A result batch read and checked before it reaches the writer: what needs no
+/// database (duplicates within the batch, the verdict's outer shape, the JSON text
+/// to store) is done by the request's own task, so that the one writer spends its
+/// time on SQL only.
+#[derive(Debug)]
+pub struct Submission {
+    worker: String,
+    engine_version: Option<String>,
+    /// Per result, in order: its answer when refused without a look at the store.
+    answers: Vec<Option<ItemAnswer>>,
+    /// The results to record, with their place in `answers`.
+    items: Vec<Checked>,
+}
+
+#[derive(Debug)]
+struct Checked {
+    index: usize,
+    lease_id: String,
+    cell_id: Option<String>,
+    outcome: Outcome,
+    /// The result JSON as it will be stored.
+    json: String,
+    elapsed_ms: Option<f64>,
+}
+
+impl Submission {
+    /// Check a batch: a lease given twice is answered `duplicate` from its second
+    /// time on, a result whose outer shape is unreadable `invalid`.
+    pub fn check(worker: &str, engine_version: Option<&str>, items: &[ResultItem]) -> Submission {
+        let mut answers: Vec<Option<ItemAnswer>> = vec![None; items.len()];
+        let mut checked = Vec::with_capacity(items.len());
+        let mut seen = HashSet::new();
+        for (i, it) in items.iter().enumerate() {
+            if !seen.insert(it.lease_id.as_str()) {
+                answers[i] = Some(reject(&it.lease_id, LeaseStatus::Duplicate, "this lease appears earlier in the same batch"));
+                continue;
+            }
+            match classify(&it.result) {
+                Ok(outcome) => checked.push(Checked {
+                    index: i,
+                    lease_id: it.lease_id.clone(),
+                    cell_id: it.cell_id.clone(),
+                    outcome,
+                    json: it.result.to_string(),
+                    elapsed_ms: it.elapsed_ms.filter(|v| v.is_finite()),
+                }),
+                Err(m) => answers[i] = Some(reject(&it.lease_id, LeaseStatus::Invalid, &m)),
+            }
+        }
+        Submission {
+            worker: worker.to_string(),
+            engine_version: engine_version.map(str::to_string),
+            answers,
+            items: checked,
+        }
+    }
+}
+
 /// A cell a submitted result may decide: held by the result's lease (`leased`, even
 /// if the lease ran out and was not swept yet), or returned to the queue when that
 /// lease expired and not leased again since (`pending`).
@@ -393,35 +501,25 @@ struct HeldCell {
     coarse_dim: Option<usize>,
 }
 
-/// Accept a batch of results (each at most once, by lease id) and refine the cells.
-pub async fn submit(
+/// Accept checked batches of results (each at most once, by lease id) and refine the
+/// cells, for several requests at once (in the order of `subs`). `pending` holds
+/// counter changes of this transaction not yet applied (other requests of the same
+/// group): the cell limit counts them. Returns the answers of each request.
+pub async fn submit_in(
     store: &Store,
+    tx: &mut Transaction<'static, Sqlite>,
     limits: QueueLimits,
-    worker: &str,
-    engine_version: Option<&str>,
-    items: &[ResultItem],
-) -> ApiResult<(Vec<ItemAnswer>, SubmitStats)> {
-    let mut answers: Vec<Option<ItemAnswer>> = vec![None; items.len()];
-    let mut outcomes: Vec<Option<Outcome>> = vec![None; items.len()];
-    let mut seen = HashSet::new();
-    for (i, it) in items.iter().enumerate() {
-        if !seen.insert(it.lease_id.as_str()) {
-            answers[i] = Some(reject(it, LeaseStatus::Duplicate, "this lease appears earlier in the same batch"));
-            continue;
-        }
-        match classify(&it.result) {
-            Ok(o) => outcomes[i] = Some(o),
-            Err(m) => answers[i] = Some(reject(it, LeaseStatus::Invalid, &m)),
-        }
-    }
-
-    let mut w = store.write().await?;
+    subs: &[&Submission],
+    pending: &Deltas,
+    deltas: &mut Deltas,
+) -> ApiResult<Vec<(Vec<ItemAnswer>, SubmitStats)>> {
+    let mut answers: Vec<Vec<Option<ItemAnswer>>> = subs.iter().map(|s| s.answers.clone()).collect();
     let now = now_ms();
-    let mut deltas = Deltas::default();
+    // Every result to record, with the request it came in.
+    let items: Vec<(usize, &Checked)> =
+        subs.iter().enumerate().flat_map(|(k, s)| s.items.iter().map(move |c| (k, c))).collect();
 
     // The cells holding these leases.
-    let wanted: Vec<&str> =
-        items.iter().zip(&outcomes).filter(|(_, o)| o.is_some()).map(|(it, _)| it.lease_id.as_str()).collect();
     let mut held: HashMap<String, HeldCell> = HashMap::new();
     // Held by the lease itself; then, for leases not found so, cells whose lease
     // expired, were swept back to the queue and were not leased again (nobody else
@@ -447,9 +545,10 @@ pub async fn submit(
         ),
     ];
     for (pass, leading) in passes {
-        let ids: Vec<&str> = wanted.iter().copied().filter(|l| !held.contains_key(*l)).collect();
-        for chunk in ids.chunks(CHUNK) {
-            let sql = format!("{pass} ({})", vec!["?"; chunk.len()].join(", "));
+        let ids: Vec<&str> =
+            items.iter().map(|(_, c)| c.lease_id.as_str()).filter(|l| !held.contains_key(*l)).collect();
+        for (chunk, size) in fixed_chunks(&ids) {
+            let sql = format!("{pass} ({})", params(size));
             let mut q = sqlx::query(&sql);
             for v in leading {
                 q = q.bind(*v);
@@ -457,7 +556,7 @@ pub async fn submit(
             for l in chunk {
                 q = q.bind(*l);
             }
-            for r in q.fetch_all(&mut *w.tx).await? {
+            for r in bind_nulls(q, size - chunk.len()).fetch_all(&mut **tx).await? {
                 let id: String = r.try_get(1)?;
                 let b: Vec<u8> = r.try_get(4)?;
                 let cell = refine::decode_box(&b).ok_or_else(|| ApiError::internal(format!("cell {id}: corrupt box")))?;
@@ -480,7 +579,8 @@ pub async fn submit(
         }
     }
 
-    // Room left under the cell limit, per campaign.
+    // Room left under the cell limit, per campaign: the stored counters, plus the
+    // cells earlier requests of this transaction created.
     let mut room: HashMap<String, i64> = HashMap::new();
     let mut infos: HashMap<String, Arc<CampaignInfo>> = HashMap::new();
     for h in held.values() {
@@ -492,8 +592,9 @@ pub async fn submit(
             let total: i64 =
                 sqlx::query_scalar("SELECT COALESCE(SUM(cells), 0) FROM campaign_counters WHERE campaign_id = ?")
                     .bind(&h.campaign_id)
-                    .fetch_one(&mut *w.tx)
+                    .fetch_one(&mut **tx)
                     .await?;
+            let total = total + pending.cells_of(&h.campaign_id);
             room.insert(h.campaign_id.clone(), limits.max_cells_per_campaign as i64 - total);
             infos.insert(h.campaign_id.clone(), info);
         }
@@ -505,11 +606,23 @@ pub async fn submit(
     // A cell takes one result per batch (two expired leases of one cell may both answer).
     let mut decided: HashSet<String> = HashSet::new();
     let mut per_campaign: HashMap<String, i64> = HashMap::new();
-    let mut stats = SubmitStats::default();
-    for (i, it) in items.iter().enumerate() {
-        let Some(outcome) = outcomes[i].take() else { continue };
+    let mut stats = vec![SubmitStats::default(); subs.len()];
+    // Leases given a result here (one request may repeat another's).
+    let mut taken: HashSet<&str> = HashSet::new();
+    for &(k, it) in &items {
+        let i = it.index;
+        let answers = &mut answers[k];
+        let outcome = &it.outcome;
+        if taken.contains(it.lease_id.as_str()) {
+            answers[i] = Some(reject(
+                &it.lease_id,
+                LeaseStatus::Duplicate,
+                "a result for this lease was already accepted; this one is ignored",
+            ));
+            continue;
+        }
         let Some(h) = held.remove(&it.lease_id) else {
-            let status = match ended_status(&mut w.tx, &it.lease_id).await? {
+            let status = match ended_status(tx, &it.lease_id).await? {
                 LeaseStatus::Completed => LeaseStatus::Duplicate,
                 s => s,
             };
@@ -522,20 +635,25 @@ pub async fn submit(
                 LeaseStatus::Released => "the worker released this lease; the cell went back to the queue",
                 _ => "no such lease",
             };
-            answers[i] = Some(reject(it, status, detail));
+            answers[i] = Some(reject(&it.lease_id, status, detail));
             continue;
         };
         if it.cell_id.as_ref().is_some_and(|c| *c != h.id) {
-            answers[i] = Some(reject(it, LeaseStatus::Invalid, &format!("this lease is for cell {}, not the cell_id given", h.id)));
+            answers[i] = Some(reject(
+                &it.lease_id,
+                LeaseStatus::Invalid,
+                &format!("this lease is for cell {}, not the cell_id given", h.id),
+            ));
             continue;
         }
         if !decided.insert(h.id.clone()) {
-            answers[i] = Some(reject(it, LeaseStatus::Expired, "the lease expired and another result for its cell came first"));
+            answers[i] =
+                Some(reject(&it.lease_id, LeaseStatus::Expired, "the lease expired and another result for its cell came first"));
             continue;
         }
         let info = &infos[&h.campaign_id];
         let vol = refine::volume(info.max_depth, h.depth);
-        let result_id = uuid::Uuid::new_v4().to_string();
+        let result_id = crate::store::new_id();
         let mut attempts = h.attempts;
         let mut error = None;
         let mut split_dim = None;
@@ -548,7 +666,7 @@ pub async fn submit(
                 false
             }
         };
-        let hint = match &outcome {
+        let hint = match outcome {
             Outcome::Inconclusive(Some(name)) => info.split.iter().position(|&k| info.states.get(k) == Some(name)),
             _ => None,
         };
@@ -559,16 +677,17 @@ pub async fn submit(
             split_envelope: &info.split_envelope,
             max_attempts: limits.max_attempts,
         };
-        if let Outcome::Error(text) = &outcome {
+        if let Outcome::Error(text) = outcome {
             attempts += 1;
             error = Some(text.clone());
         }
-        let status = match refine::next_state(&outcome, hint, &cell_now, &rules, || can_split(&mut room)) {
+        let status = match refine::next_state(outcome, hint, &cell_now, &rules, || can_split(&mut room)) {
             refine::NextState::Takes(status) => status,
             refine::NextState::Split { dim, halves: (a, b) } => {
                 split_dim = Some(dim as i64);
                 children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, a));
                 children.push((h.campaign_id.clone(), h.id.clone(), h.depth + 1, b));
+                stats[k].cells_created += 2;
                 deltas.add(&h.campaign_id, CellStatus::Pending, 2, vol);
                 CellStatus::Split
             }
@@ -589,56 +708,58 @@ pub async fn submit(
             result_id.clone(),
             h.campaign_id.clone(),
             h.id.clone(),
-            it.lease_id.clone(),
+            it.lease_id.as_str(),
+            subs[k].worker.as_str(),
             outcome.kind(),
-            it.result.to_string(),
-            it.elapsed_ms.filter(|v| v.is_finite()),
+            it.json.as_str(),
+            subs[k].engine_version.as_deref(),
+            it.elapsed_ms,
             h.leased_at,
         ));
         cell_rows.push((h.rowid, status, split_dim, attempts, error, result_id));
-        stats.accepted += 1;
+        taken.insert(it.lease_id.as_str());
+        stats[k].accepted += 1;
         answers[i] = Some(ItemAnswer { cell_status: Some(status), ..ItemAnswer::new(&it.lease_id, LeaseStatus::Accepted) });
     }
 
-    for chunk in result_rows.chunks(CHUNK) {
+    for (chunk, size) in fixed_chunks(&result_rows) {
         let sql = format!(
             "INSERT INTO results (id, campaign_id, cell_id, lease_id, worker, kind, verdict_json, engine_version,
-             elapsed_ms, leased_at, received_at) VALUES {}",
-            tuples(chunk.len(), 11)
+             elapsed_ms, leased_at, received_at) SELECT * FROM (VALUES {}) WHERE column1 IS NOT NULL",
+            tuples(size, 11)
         );
         let mut q = sqlx::query(&sql);
-        for (id, cid, cell, lease, kind, json, elapsed, leased_at) in chunk {
+        for (id, cid, cell, lease, worker, kind, json, engine_version, elapsed, leased_at) in chunk {
             q = q
                 .bind(id.as_str())
                 .bind(cid.as_str())
                 .bind(cell.as_str())
-                .bind(lease.as_str())
-                .bind(worker)
+                .bind(*lease)
+                .bind(*worker)
                 .bind(*kind)
-                .bind(json.as_str())
-                .bind(engine_version)
+                .bind(*json)
+                .bind(*engine_version)
                 .bind(*elapsed)
                 .bind(*leased_at)
                 .bind(now);
         }
-        q.execute(&mut *w.tx).await?;
+        bind_nulls(q, 11 * (size - chunk.len())).execute(&mut **tx).await?;
     }
-    for chunk in cell_rows.chunks(CHUNK) {
+    for (chunk, size) in fixed_chunks(&cell_rows) {
         let sql = format!(
             "UPDATE cells SET status = v.column2, split_dim = v.column3, attempts = v.column4,
              last_error = COALESCE(v.column5, last_error), result_id = v.column6,
              lease_id = NULL, lease_expires_at = NULL, leased_by = NULL, updated_at = ?
              FROM (VALUES {}) AS v WHERE cells.rowid = v.column1",
-            tuples(chunk.len(), 6)
+            tuples(size, 6)
         );
         let mut q = sqlx::query(&sql).bind(now);
         for (rowid, status, dim, attempts, error, rid) in chunk {
             q = q.bind(*rowid).bind(status.as_str()).bind(*dim).bind(*attempts).bind(error.clone()).bind(rid.as_str());
         }
-        q.execute(&mut *w.tx).await?;
+        bind_nulls(q, 6 * (size - chunk.len())).execute(&mut **tx).await?;
     }
-    stats.cells_created = children.len() as u64;
-    insert_cells(&mut w.tx, &children, now).await?;
+    insert_cells(tx, &children, now).await?;
     for (cid, n) in &per_campaign {
         sqlx::query(
             "UPDATE campaigns SET results_count = results_count + ?, first_result_at = COALESCE(first_result_at, ?),
@@ -649,19 +770,23 @@ pub async fn submit(
         .bind(now)
         .bind(now)
         .bind(cid)
-        .execute(&mut *w.tx)
+        .execute(&mut **tx)
         .await?;
     }
-    deltas.apply(&mut w.tx).await?;
-    w.commit().await?;
 
-    let answers: Vec<ItemAnswer> = answers.into_iter().flatten().collect();
-    stats.rejected = answers.len() as u64 - stats.accepted;
-    Ok((answers, stats))
+    Ok(answers
+        .into_iter()
+        .zip(stats)
+        .map(|(answers, mut stats)| {
+            let answers: Vec<ItemAnswer> = answers.into_iter().flatten().collect();
+            stats.rejected = answers.len() as u64 - stats.accepted;
+            (answers, stats)
+        })
+        .collect())
 }
 
-fn reject(it: &ResultItem, status: LeaseStatus, detail: &str) -> ItemAnswer {
-    ItemAnswer { detail: Some(detail.into()), ..ItemAnswer::new(&it.lease_id, status) }
+fn reject(lease_id: &str, status: LeaseStatus, detail: &str) -> ItemAnswer {
+    ItemAnswer { detail: Some(detail.into()), ..ItemAnswer::new(lease_id, status) }
 }
 
 /// Insert new `pending` cells `(campaign, parent, depth, box)` (counters are the
@@ -672,14 +797,15 @@ pub async fn insert_cells(
     now: i64,
 ) -> ApiResult<Vec<String>> {
     let mut ids = Vec::with_capacity(cells.len());
-    for chunk in cells.chunks(CHUNK) {
+    for (chunk, size) in fixed_chunks(cells) {
         let sql = format!(
-            "INSERT INTO cells (id, campaign_id, parent_id, depth, box, status, created_at, updated_at) VALUES {}",
-            tuples(chunk.len(), 8)
+            "INSERT INTO cells (id, campaign_id, parent_id, depth, box, status, created_at, updated_at)
+             SELECT * FROM (VALUES {}) WHERE column1 IS NOT NULL",
+            tuples(size, 8)
         );
         let mut q = sqlx::query(&sql);
         for (cid, parent, depth, b) in chunk {
-            let id = uuid::Uuid::new_v4().to_string();
+            let id = crate::store::new_id();
             let parent = if parent.is_empty() { None } else { Some(parent.clone()) };
             q = q
                 .bind(id.clone())
@@ -692,7 +818,7 @@ pub async fn insert_cells(
                 .bind(now);
             ids.push(id);
         }
-        q.execute(&mut **tx).await?;
+        bind_nulls(q, 8 * (size - chunk.len())).execute(&mut **tx).await?;
     }
     Ok(ids)
 }

@@ -23,6 +23,7 @@ pub mod seed;
 pub mod store;
 pub mod tiling;
 pub mod views;
+pub mod writer;
 
 pub use api::{router, routes, AppState};
 pub use config::Config;

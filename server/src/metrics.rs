@@ -4,6 +4,7 @@
 use tessera_protocol::CampaignState;
 use crate::error::ApiResult;
 use crate::store::Store;
+use crate::writer::WriterCounts;
 use sqlx::Row;
 use std::fmt::Write;
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -59,7 +60,7 @@ impl Metrics {
     }
 
     /// Prometheus text exposition format, version 0.0.4.
-    pub async fn render(&self, store: &Store) -> ApiResult<String> {
+    pub async fn render(&self, store: &Store, writer: WriterCounts) -> ApiResult<String> {
         let mut s = String::new();
         let counter = |s: &mut String, name: &str, help: &str, v: &AtomicU64| {
             let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {}", v.load(Ordering::Relaxed));
@@ -69,6 +70,14 @@ impl Metrics {
         counter(&mut s, "tessera_results_accepted_total", "Results accepted since start.", &self.results_accepted);
         counter(&mut s, "tessera_results_rejected_total", "Results ignored (duplicate, late, invalid) since start.", &self.results_rejected);
         counter(&mut s, "tessera_cells_created_total", "Cells created by bisection since start.", &self.cells_created);
+        let plain = |s: &mut String, name: &str, help: &str, v: String| {
+            let _ = writeln!(s, "# HELP {name} {help}\n# TYPE {name} counter\n{name} {v}");
+        };
+        plain(&mut s, "tessera_write_groups_total", "Group transactions of lease, extend, release and result requests.", writer.groups.to_string());
+        plain(&mut s, "tessera_write_group_requests_total", "Requests run in group transactions.", writer.requests.to_string());
+        plain(&mut s, "tessera_write_groups_retried_total", "Groups run again one request per savepoint after a request failed.", writer.retried.to_string());
+        plain(&mut s, "tessera_write_work_seconds_total", "Time group transactions spent on their requests.", writer.work_seconds.to_string());
+        plain(&mut s, "tessera_write_commit_seconds_total", "Time group transactions spent in COMMIT.", writer.commit_seconds.to_string());
         self.lease_seconds.render("tessera_lease_request_seconds", "Time to serve a lease request.", &mut s);
         self.submit_seconds.render("tessera_submit_request_seconds", "Time to serve a result submission.", &mut s);
 

@@ -21,7 +21,7 @@ pub struct SeedCell {
 /// The root, then uniform cuts down to `initial` (widest relative dimension first).
 pub fn uniform_tree(info: &CampaignInfo, initial: u32) -> Vec<SeedCell> {
     let mut nodes = vec![SeedCell {
-        id: uuid::Uuid::new_v4().to_string(),
+        id: crate::store::new_id(),
         parent: None,
         depth: 0,
         cell: info.split_envelope.clone(),
@@ -41,7 +41,7 @@ pub fn uniform_tree(info: &CampaignInfo, initial: u32) -> Vec<SeedCell> {
             for c in [a, b] {
                 next.push(nodes.len());
                 nodes.push(SeedCell {
-                    id: uuid::Uuid::new_v4().to_string(),
+                    id: crate::store::new_id(),
                     parent: Some(pid.clone()),
                     depth,
                     cell: c,

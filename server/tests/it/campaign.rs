@@ -167,6 +167,13 @@ async fn scripted_campaign_ends_with_exact_fractions() {
     assert!(m.contains(&format!("tessera_volume_fraction{{campaign=\"{id}\",status=\"safe\"}} 0.4375")), "{m}");
     assert!(m.contains(&format!("tessera_volume_fraction{{campaign=\"{id}\",status=\"counterexample\"}} 0.0625")), "{m}");
     assert!(!m.contains("status=\"unsafe\""), "{m}");
+    // Every lease and result request went through the group writer.
+    let value = |name: &str| -> f64 {
+        m.lines().find_map(|l| l.strip_prefix(&format!("{name} "))).and_then(|v| v.parse().ok()).unwrap_or(f64::NAN)
+    };
+    let (groups, requests) = (value("tessera_write_groups_total"), value("tessera_write_group_requests_total"));
+    assert!(groups >= 1.0 && requests >= groups, "groups {groups}, requests {requests}:\n{m}");
+    assert_eq!(value("tessera_write_groups_retried_total"), 0.0, "{m}");
     ts.server.stop().await.unwrap();
 }
 

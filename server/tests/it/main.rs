@@ -8,5 +8,6 @@ mod api_surface;
 mod campaign;
 mod dashboard_api;
 mod followup;
+mod group_commit;
 mod onnx_reference;
 mod store_cancel;
