@@ -55,7 +55,7 @@
 //! Upper bounds are `−(lower bound of −objective)`. Any NaN met in a bound becomes an
 //! infinite (vacuous) bound, never a finite one.
 
-use super::slopes::{Slopes, Target};
+use super::slopes::{adaptive_slope, Slopes, Target};
 use super::{Layer, Network};
 use crate::interval::Interval;
 use crate::spec::BoundsMethod;
@@ -391,12 +391,9 @@ fn backward_linear(
                             let mut lp = if l > 0.0 {
                                 // lower relaxation relu(z) ≥ α·z, α chosen by the
                                 // optimiser when given, else by the adaptive rule
-                                if let Some(s) = slopes {
-                                    l * s.get(r, k, i)
-                                } else if hi >= -lo {
-                                    l
-                                } else {
-                                    0.0
+                                match slopes {
+                                    Some(s) => l * s.get(r, k, i),
+                                    None => l * adaptive_slope(z),
                                 }
                             } else {
                                 // triangle upper bound relu(z) ≤ u/(u−l)·(z − l)
@@ -529,17 +526,7 @@ fn symbolic_bounds(net: &Network, input: &[Interval], interval: Option<&OutputBo
 /// instead of 21 of 64 cells at three times the cost.) `None` when the network has sigmoid/tanh layers or a bound on
 /// the way is undefined or unbounded.
 pub fn linear_lower_bounds(net: &Network, input: &[Interval], obj: Array2<f64>) -> Option<(Array2<f64>, Vec<f64>)> {
-    assert_eq!(input.len(), net.input_dim(), "network takes {} inputs, got {}", net.input_dim(), input.len());
-    assert_eq!(obj.ncols(), net.output_dim(), "objective over {} outputs, network has {}", obj.ncols(), net.output_dim());
-    if input.iter().any(|i| i.is_undefined() || !i.is_bounded()) {
-        return None;
-    }
-    let vals = tightened_values(net, input);
-    let (lam, d, stop) = backward_linear(net, &vals, net.layers().len(), obj, None)?;
-    if stop != 0 || d.iter().any(|v| !v.is_finite()) {
-        return None;
-    }
-    Some((lam, d))
+    linear_lower_bounds_tuned(net, input, obj, 0, Target::Mean)
 }
 
 /// [`linear_lower_bounds`] with the ReLU lower slopes optimised per row by `steps`
@@ -547,9 +534,6 @@ pub fn linear_lower_bounds(net: &Network, input: &[Interval], obj: Array2<f64>) 
 /// the same guarantee (the slopes are only proposals, the rigorous pass checks
 /// nothing less for them). With `steps == 0` it is [`linear_lower_bounds`].
 pub fn linear_lower_bounds_tuned(net: &Network, input: &[Interval], obj: Array2<f64>, steps: u32, target: Target) -> Option<(Array2<f64>, Vec<f64>)> {
-    if steps == 0 {
-        return linear_lower_bounds(net, input, obj);
-    }
     assert_eq!(input.len(), net.input_dim(), "network takes {} inputs, got {}", net.input_dim(), input.len());
     assert_eq!(obj.ncols(), net.output_dim(), "objective over {} outputs, network has {}", obj.ncols(), net.output_dim());
     if input.iter().any(|i| i.is_undefined() || !i.is_bounded()) {
@@ -557,7 +541,7 @@ pub fn linear_lower_bounds_tuned(net: &Network, input: &[Interval], obj: Array2<
     }
     let vals = tightened_values(net, input);
     let top = net.layers().len();
-    let slopes = super::slopes::optimise(net, &vals, top, &obj, steps, target);
+    let slopes = if steps == 0 { None } else { super::slopes::optimise(net, &vals, top, &obj, steps, target) };
     let (lam, d, stop) = backward_linear(net, &vals, top, obj, slopes.as_ref())?;
     if stop != 0 || d.iter().any(|v| !v.is_finite()) {
         return None;

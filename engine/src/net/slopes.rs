@@ -34,7 +34,7 @@ impl Slopes {
 }
 
 /// The fixed rule of the backward pass: `α = 1` if `u ≥ −l`, else 0.
-fn adaptive(z: &Interval) -> f64 {
+pub fn adaptive_slope(z: &Interval) -> f64 {
     if z.hi() >= -z.lo() {
         1.0
     } else {
@@ -80,7 +80,7 @@ pub fn optimise(net: &Network, vals: &[Vec<Interval>], top: usize, obj: &Array2<
     for (k, layer) in layers.iter().enumerate() {
         if matches!(layer, Layer::Relu) {
             for (i, z) in vals[k].iter().enumerate() {
-                init[base[k] + i] = adaptive(z);
+                init[base[k] + i] = adaptive_slope(z);
             }
         }
     }
