@@ -182,16 +182,21 @@ fn campaign_json(r: &sqlx::sqlite::SqliteRow, counts: &HashMap<CellStatus, (i64,
     }))
 }
 
-pub(crate) const CAMPAIGN_COLS: &str =
+const CAMPAIGN_COLS: &str =
     "id, name, state, priority, spec_hash, max_depth, results_count, created_at, updated_at, finished_at, first_result_at, last_result_at, follow_up_of";
 
-/// One campaign's summary; 404 when unknown.
-pub async fn get(store: &Store, id: &str) -> ApiResult<Value> {
-    let row = sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
+/// One campaign's row ([`CAMPAIGN_COLS`]); 404 when unknown.
+pub(crate) async fn campaign_row(store: &Store, id: &str) -> ApiResult<sqlx::sqlite::SqliteRow> {
+    sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
         .bind(id)
         .fetch_optional(&store.pool)
         .await?
-        .ok_or_else(|| ApiError::not_found("campaign", id))?;
+        .ok_or_else(|| ApiError::not_found("campaign", id))
+}
+
+/// One campaign's summary; 404 when unknown.
+pub async fn get(store: &Store, id: &str) -> ApiResult<Value> {
+    let row = campaign_row(store, id).await?;
     campaign_json(&row, &store.counters(id).await?)
 }
 

@@ -8,16 +8,12 @@ use serde_json::{json, Value};
 use sqlx::Row;
 use tessera_protocol::{CampaignState, CellStatus, Coverage, StatusCoverage, COUNTEREXAMPLE_NOTE};
 use tessera_engine::caution::CAUTION;
-use crate::campaigns::CAMPAIGN_COLS;
+use crate::campaigns::campaign_row;
 
 /// Coverage: per-status cells and exact volume fractions, rates and an estimate of
 /// the time left. O(1) in the number of cells.
 pub async fn coverage(store: &Store, id: &str) -> ApiResult<Coverage> {
-    let row = sqlx::query(&format!("SELECT {CAMPAIGN_COLS} FROM campaigns WHERE id = ?"))
-        .bind(id)
-        .fetch_optional(&store.pool)
-        .await?
-        .ok_or_else(|| ApiError::not_found("campaign", id))?;
+    let row = campaign_row(store, id).await?;
     let d = row.try_get::<i64, _>("max_depth")? as u32;
     let counts = store.counters(id).await?;
     let total = refine::volume(d, 0);
